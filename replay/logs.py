@@ -1,0 +1,250 @@
+"""Recorded event logs: JSON Lines, Parquet and CSV, read in bounded chunks.
+
+Whatever the log's size, at most one chunk (a few MiB of text or
+``batch_rows`` rows) is held at a time. Each chunk is parsed and validated
+into a :class:`~stream.events.Parsed` together with the position of every
+record, so that rejects can name their place and a reader can resume.
+
+Positions: for JSON Lines, the 1-based line number and the byte offset of the
+line's start; for Parquet and CSV, the 0-based row number (``offset`` is the
+row number too).
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Iterator
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.csv as pcsv
+import pyarrow.parquet as pq
+
+from stream.events import FIELDS, Limits, Parsed, parse_json_records, validate_table
+
+CHUNK_BYTES = 8 << 20
+
+
+class LogError(RuntimeError):
+    """A log that cannot be read at all; the message names the file and the reason."""
+
+
+@dataclass
+class LogChunk:
+    """One parsed chunk of a log.
+
+    Attributes
+    ----------
+    parsed : Parsed
+        Valid events and rejects of the chunk.
+    lines : int64 array
+        Line number (JSON Lines) or row number of every input record.
+    offsets : int64 array
+        Byte offset (JSON Lines) or row number of every input record.
+    end_offset : int
+        Where reading resumes after this chunk (bytes or rows).
+    raw : callable
+        ``raw(i)`` gives the text of input record ``i`` (for the rejects file).
+    """
+
+    parsed: Parsed
+    lines: np.ndarray
+    offsets: np.ndarray
+    end_offset: int
+    raw: callable
+
+
+def log_format(path: Path) -> str:
+    """``jsonl``, ``parquet`` or ``csv`` from the file name."""
+    name = Path(path).name.lower()
+    if name.endswith(".parquet") or name.endswith(".pq"):
+        return "parquet"
+    if name.endswith(".csv"):
+        return "csv"
+    return "jsonl"
+
+
+def read_log(
+    path: Path,
+    limits: Limits = Limits(),
+    start_offset: int = 0,
+    start_line: int = 1,
+    batch_rows: int = 65_536,
+    follow_partial: bool = False,
+) -> Iterator[LogChunk]:
+    """Iterate over a log in chunks.
+
+    Parameters
+    ----------
+    path : Path
+        A ``.jsonl``/``.json``/``.ndjson`` (anything else is read as JSON
+        Lines), ``.parquet`` or ``.csv`` file.
+    start_offset, start_line : int
+        Resume point (bytes and line number for JSON Lines, rows otherwise).
+    follow_partial : bool
+        JSON Lines only: leave a last line without its newline unread (it may
+        still be being written). A finished log reads it too.
+
+    Raises
+    ------
+    LogError
+        When the file is missing, unreadable, or not of its format at all.
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise LogError(f"{path}: no such log file")
+    fmt = log_format(path)
+    try:
+        if fmt == "parquet":
+            yield from _read_parquet(path, limits, start_offset, batch_rows)
+        elif fmt == "csv":
+            yield from _read_csv(path, limits, start_offset, batch_rows)
+        else:
+            yield from _read_jsonl(path, limits, start_offset, start_line, follow_partial)
+    except OSError as exc:
+        raise LogError(f"{path}: cannot read: {exc.strerror or exc}") from exc
+    except pa.ArrowException as exc:
+        raise LogError(f"{path}: not a readable {fmt} log: {exc}") from exc
+
+
+def _read_jsonl(path: Path, limits: Limits, offset: int, line_no: int, follow_partial: bool) -> Iterator[LogChunk]:
+    with open(path, "rb") as fh:
+        fh.seek(offset)
+        carry = b""
+        while True:
+            block = fh.read(CHUNK_BYTES)
+            at_end = not block
+            data = carry + block
+            if not data:
+                return
+            cut = data.rfind(b"\n") + 1
+            if at_end and not follow_partial:
+                cut = len(data)
+            if cut == 0:
+                if at_end:
+                    return
+                if len(data) > limits.max_record_bytes + CHUNK_BYTES:
+                    cut = len(data)  # an endless line: hand it over, it is rejected as too long
+                else:
+                    carry = data
+                    continue
+            body, carry = data[:cut], data[cut:]
+            chunk = _jsonl_chunk(body, offset, line_no, limits)
+            if chunk is not None:
+                yield chunk
+            line_no += body.count(b"\n") + (0 if body.endswith(b"\n") else 1)
+            offset += len(body)
+            if at_end:
+                return
+
+
+def _jsonl_chunk(body: bytes, offset: int, line_no: int, limits: Limits) -> LogChunk | None:
+    text = body[:-1] if body.endswith(b"\n") else body
+    records = text.split(b"\n")
+    starts = np.concatenate(([0], np.flatnonzero(np.frombuffer(text, np.uint8) == 10) + 1)).astype(np.int64)
+    lengths = np.diff(np.append(starts, len(text) + 1)) - 1
+    blank = lengths == 0
+    if blank.any():
+        keep = np.flatnonzero(~blank)
+        records = [records[i] for i in keep]
+    else:
+        keep = np.arange(len(records))
+    end = offset + len(body)
+    if not records:
+        return None
+    parsed = parse_json_records(records, limits)
+    return LogChunk(
+        parsed,
+        line_no + keep.astype(np.int64),
+        offset + starts[keep],
+        end,
+        lambda i: records[i].decode("utf-8", "replace"),
+    )
+
+
+def _table_chunk(table: pa.Table, first_row: int, limits: Limits, first_line: int) -> LogChunk:
+    """Validate a table of rows; ``first_line`` is the line or row number of its first row."""
+    typed, reasons = _decode_text_columns(table)
+    parsed = validate_table(typed, limits, reasons)
+    rows = np.arange(table.num_rows, dtype=np.int64)
+
+    def raw(i: int) -> str:
+        return json.dumps(table.slice(i, 1).to_pylist()[0], default=str)
+
+    return LogChunk(parsed, first_line + rows, first_row + rows, first_row + table.num_rows, raw)
+
+
+def _decode_text_columns(table: pa.Table) -> tuple[pa.Table, list | None]:
+    """Numbers held as text (CSV) converted, with a reason for each bad cell."""
+    reasons: list | None = None
+    for name, typ in (("weight", pa.float64()), ("ts", pa.int64())):
+        if name not in table.column_names or not pa.types.is_string(table.schema.field(name).type):
+            continue
+        col = table.column(name).combine_chunks()
+        blank = pc.equal(pc.utf8_trim_whitespace(col), "")
+        col = pc.if_else(blank, pa.nulls(len(col), pa.string()), col)
+        try:
+            converted = pc.cast(col, typ)
+        except pa.ArrowInvalid:
+            values, bad = _convert_cells(col.to_pylist(), float if name == "weight" else int)
+            converted = pa.array(values, typ)
+            reasons = reasons or [None] * table.num_rows
+            for i in bad:
+                reasons[i] = reasons[i] or f"{name} {col[i].as_py()[:40]!r} is not a number"
+        table = table.set_column(table.column_names.index(name), name, converted)
+    return table, reasons
+
+
+def _convert_cells(cells: list, kind) -> tuple[list, list[int]]:
+    values, bad = [], []
+    for i, cell in enumerate(cells):
+        try:
+            values.append(None if cell is None else kind(cell))
+        except ValueError:
+            values.append(None)
+            bad.append(i)
+    return values, bad
+
+
+def _read_parquet(path: Path, limits: Limits, start_row: int, batch_rows: int) -> Iterator[LogChunk]:
+    pf = pq.ParquetFile(path)
+    columns = [c for c in FIELDS if c in pf.schema_arrow.names]
+    if "op" not in columns:
+        raise LogError(f"{path}: a Parquet log needs at least an 'op' column (has {pf.schema_arrow.names})")
+    row = 0
+    for rb in pf.iter_batches(batch_size=batch_rows, columns=columns):
+        table = pa.Table.from_batches([rb])
+        if row + table.num_rows <= start_row:
+            row += table.num_rows
+            continue
+        if row < start_row:
+            table = table.slice(start_row - row)
+            row = start_row
+        yield _table_chunk(table, row, limits, first_line=row)
+        row += table.num_rows
+
+
+def _read_csv(path: Path, limits: Limits, start_row: int, batch_rows: int) -> Iterator[LogChunk]:
+    types = {name: pa.string() for name in FIELDS}
+    reader = pcsv.open_csv(
+        path,
+        read_options=pcsv.ReadOptions(block_size=1 << 22),
+        convert_options=pcsv.ConvertOptions(column_types=types, strings_can_be_null=True),
+    )
+    row = 0
+    for rb in reader:
+        table = pa.Table.from_batches([rb])
+        if "op" not in table.column_names:
+            raise LogError(f"{path}: a CSV log needs the header op,src,dst,weight,ts (has {table.column_names})")
+        if row + table.num_rows <= start_row:
+            row += table.num_rows
+            continue
+        if row < start_row:
+            table = table.slice(start_row - row)
+            row = start_row
+        # line numbers count the header line
+        yield _table_chunk(table, row, limits, first_line=row + 2)
+        row += table.num_rows

@@ -1,0 +1,104 @@
+"""Exact recompute of PageRank with SciPy sparse matrices.
+
+Solves ``x = a s + d P^T x`` by the power (Jacobi) iteration, cold from
+``a s`` or warm from a previous solution, and stops on a *certified* bound:
+the residual of an iterate ``x_k`` is ``r_k = (x_{k+1} - x_k) / a`` and
+:func:`solver.metrics.certified_bound` turns it into a bound on the
+normalised L1 error. This is also the "natural" warm-started recompute that
+the benchmarks compare the incremental engine with.
+
+Normalising ``x`` gives the PageRank in which dangling nodes jump according to
+the teleport distribution (Langville & Meyer, "Deeper inside PageRank",
+Internet Mathematics 1(3), 2004; Ipsen & Selee, SIAM J. Matrix Anal. Appl.
+29(4), 2007), the convention of NetworkX's ``pagerank``.
+
+References
+----------
+.. [1] L. Page, S. Brin, R. Motwani, T. Winograd, "The PageRank citation
+   ranking: bringing order to the web", Stanford InfoLab report, 1999.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.sparse as sp
+
+from .metrics import certified_bound
+
+
+@dataclass
+class ExactSolution:
+    """Result of :func:`solve`.
+
+    Attributes
+    ----------
+    x : ndarray
+        Unnormalised solution of ``x = a s + d P^T x``.
+    iterations : int
+        Matrix-vector products used.
+    bound : float
+        Certified bound on the normalised L1 error of ``x / sum(x)``.
+    """
+
+    x: np.ndarray
+    iterations: int
+    bound: float
+
+    @property
+    def scores(self) -> np.ndarray:
+        """Normalised scores (sum 1), all zero for an empty teleport."""
+        total = self.x.sum()
+        return self.x / total if total > 0 else np.zeros_like(self.x)
+
+
+def transition_transpose(
+    src: np.ndarray, dst: np.ndarray, weight: np.ndarray, n: int
+) -> sp.csr_matrix:
+    """``P^T`` in CSR form from an edge list (duplicate pairs are summed)."""
+    out_w = np.bincount(src, weights=weight, minlength=n)
+    return sp.csr_matrix((weight / out_w[src], (dst, src)), shape=(n, n))
+
+
+def solve(
+    PT: sp.csr_matrix,
+    s: np.ndarray,
+    damping: float = 0.85,
+    tol: float = 1e-12,
+    x0: np.ndarray | None = None,
+    max_iter: int = 100_000,
+) -> ExactSolution:
+    """Solve ``x = a s + d P^T x`` to a certified normalised L1 error ``tol``.
+
+    Parameters
+    ----------
+    PT : scipy.sparse matrix
+        Transposed transition matrix (columns of dangling nodes are zero).
+    s : ndarray
+        Non-negative teleport vector (unnormalised).
+    damping : float
+        ``d``; the teleport probability is ``a = 1 - d``.
+    tol : float
+        Target bound on ``||x_k / sum(x_k) - pi||_1``.
+    x0 : ndarray, optional
+        Warm start in the same (unnormalised) scale as ``x``; cold start
+        ``a s`` when omitted.
+    max_iter : int
+        Safety cap on the number of iterations.
+
+    Returns
+    -------
+    ExactSolution
+    """
+    a = 1.0 - damping
+    base = a * np.asarray(s, dtype=np.float64)
+    x = base.copy() if x0 is None else np.asarray(x0, dtype=np.float64).copy()
+    bound = np.inf
+    for it in range(1, max_iter + 1):
+        nxt = base + damping * (PT @ x)
+        bound = certified_bound(x, (nxt - x) / a)
+        x = nxt
+        if bound <= tol:
+            return ExactSolution(x, it, bound)
+    return ExactSolution(x, max_iter, bound)

@@ -1,0 +1,466 @@
+"""Compiled per-edge kernels: event repair, forward push, global sweep.
+
+Notation (see ``DEVELOPERS.md`` and the design notes): damping ``d``, teleport
+probability ``a = 1 - d``, teleport vector ``s`` per profile, estimate ``p`` and
+residual ``r`` with the invariant
+
+    r = s - (I - d P^T) p / a,
+
+so that the exact solution of ``x = a s + d P^T x`` is ``x = p + R r`` with
+``R = a (I - d P^T)^{-1}`` whose columns sum to at most 1.
+
+Every kernel here keeps that invariant exactly (up to rounding). The profile
+arrays ``P``, ``R``, ``S`` have one row per profile; all profiles share the
+graph.
+
+References
+----------
+.. [1] R. Andersen, F. Chung, K. Lang, "Local graph partitioning using
+   PageRank vectors", FOCS 2006 (forward push).
+.. [2] H. Zhang, P. Lofgren, A. Goel, "Approximate personalized PageRank on
+   dynamic graphs", KDD 2016 (O(1) invariant repair by rescaling ``p(u)``).
+.. [3] H. Wu, J. Gan, Z. Wei, R. Zhang, "Unifying the global and local
+   approaches: an efficient power iteration with forward push", SIGMOD 2021
+   (switching from local pushes to global sweeps).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from numba import njit
+
+from .graph import hash_home
+
+OP_INSERT = 0
+OP_DELETE = 1
+OP_SEED = 2
+
+#: Above this out-degree an event on ``u`` is repaired in O(1) by rescaling
+#: ``p(u)`` [2]; at or below it, the residual of every out-neighbour is
+#: corrected instead (O(deg u)). Both keep the invariant exactly; the second
+#: leaves a residual that sums to zero, which cancels out as it spreads
+#: instead of having to be absorbed by teleportation (see DEVELOPERS.md).
+LOCAL_REPAIR_MAX_DEGREE = 64
+
+# ---------------------------------------------------------------- hash table
+
+
+@njit(cache=True)
+def find_cell(table, shift, src, dst, u, v):
+    """Hash cell holding the slot of ``u -> v``, or -1."""
+    mask = table.shape[0] - 1
+    i = hash_home(u, v, shift)
+    while True:
+        e = table[i]
+        if e == -1:
+            return -1
+        if src[e] == u and dst[e] == v:
+            return i
+        i = (i + 1) & mask
+
+
+@njit(cache=True)
+def _hash_insert(table, shift, u, v, e):
+    mask = table.shape[0] - 1
+    i = hash_home(u, v, shift)
+    while table[i] != -1:
+        i = (i + 1) & mask
+    table[i] = e
+
+
+@njit(cache=True)
+def _hash_remove(table, shift, src, dst, cell):
+    """Backward-shift deletion: keeps every probe chain unbroken, no tombstones."""
+    mask = table.shape[0] - 1
+    hole = cell
+    j = cell
+    while True:
+        j = (j + 1) & mask
+        e = table[j]
+        if e == -1:
+            break
+        home = hash_home(src[e], dst[e], shift)
+        # the entry at j may move into the hole unless its home lies in (hole, j]
+        if hole <= j:
+            stays = hole < home <= j
+        else:
+            stays = home > hole or home <= j
+        if not stays:
+            table[hole] = e
+            hole = j
+    table[hole] = -1
+
+
+# ---------------------------------------------------------------- edge slots
+
+
+@njit(cache=True)
+def _alloc_slot(counters, src, nxt):
+    free = counters[1]
+    if free >= 0:
+        counters[1] = nxt[free]
+        return free
+    e = counters[0]
+    counters[0] = e + 1
+    return e
+
+
+@njit(cache=True)
+def _link(head, src, dst, weight, nxt, prv, e, u, v, w):
+    src[e] = u
+    dst[e] = v
+    weight[e] = w
+    first = head[u]
+    nxt[e] = first
+    prv[e] = -1
+    if first >= 0:
+        prv[first] = e
+    head[u] = e
+
+
+@njit(cache=True)
+def _unlink(head, src, nxt, prv, counters, e):
+    u = src[e]
+    before = prv[e]
+    after = nxt[e]
+    if before >= 0:
+        nxt[before] = after
+    else:
+        head[u] = after
+    if after >= 0:
+        prv[after] = before
+    src[e] = -1
+    prv[e] = -1
+    nxt[e] = counters[1]
+    counters[1] = e
+
+
+# ---------------------------------------------------------------- repair
+
+
+@njit(cache=True)
+def _mark(k, v, active, n_active, in_active):
+    if not in_active[k, v]:
+        in_active[k, v] = True
+        active[k, n_active[k]] = v
+        n_active[k] += 1
+
+
+@njit(cache=True)
+def _repair_rescale(P, R, k, u, v, w_old, w_new, W_old, W_new, a, d, active, n_active, in_active):
+    """O(1) repair of [2]: rescale p(u) so flows on u's other edges stay put."""
+    p_u = P[k, u]
+    if W_old == 0.0:
+        # u was dangling: its row becomes e_v, p(u) is unchanged
+        R[k, v] += (d / a) * p_u
+    elif W_new == 0.0:
+        # u becomes dangling: the flow it sent to v is gone, p(u) is kept
+        R[k, v] -= (d / a) * p_u
+    else:
+        p_new = p_u * W_new / W_old
+        P[k, u] = p_new
+        R[k, u] -= (p_new - p_u) / a
+        delta = w_new - w_old
+        if delta > 0.0:
+            R[k, v] += (d / a) * p_new * delta / W_new
+        else:
+            R[k, v] += (d / a) * p_u * delta / W_old
+    _mark(k, u, active, n_active, in_active)
+    _mark(k, v, active, n_active, in_active)
+
+
+@njit(cache=True)
+def _repair_neighbours(P, R, k, u, v, w_old, W_old, W_new, head, dst, weight, nxt, a, d, active, n_active, in_active):
+    """O(deg u) repair: keep p(u), correct r on each out-neighbour of u.
+
+    The correction is ``(d/a) p(u) (P'(u, y) - P(u, y))`` for every ``y``; it sums
+    to zero unless u starts or stops being dangling.
+    """
+    c = (d / a) * P[k, u]
+    if c == 0.0:
+        return
+    seen_v = False
+    e = head[u]
+    while e >= 0:
+        y = dst[e]
+        w = weight[e]
+        before = 0.0
+        if W_old > 0.0:
+            before = (w_old if y == v else w) / W_old
+        if y == v:
+            seen_v = True
+        R[k, y] += c * (w / W_new - before)
+        _mark(k, y, active, n_active, in_active)
+        e = nxt[e]
+    if not seen_v and W_old > 0.0:
+        # the edge u -> v was removed: its old flow leaves v
+        R[k, v] -= c * w_old / W_old
+        _mark(k, v, active, n_active, in_active)
+
+
+@njit(cache=True)
+def apply_events(
+    op, src, dst, wt,
+    head, out_weight, out_degree, e_src, e_dst, e_w, e_next, e_prev, table, counters,
+    P, R, S, a, d, active, n_active, in_active, local_max_degree,
+):
+    """Apply one batch of events in order and repair every profile.
+
+    Parameters
+    ----------
+    op : int8 array
+        ``OP_INSERT`` (set weight of src->dst), ``OP_DELETE`` (remove it) or
+        ``OP_SEED`` (set the teleport weight of node ``src`` in profile ``dst``).
+    src, dst : int32 arrays
+        Node indices (for a seed: node and profile row).
+    wt : float64 array
+        Edge weight (insert) or teleport weight (seed); validated by the caller.
+
+    Returns
+    -------
+    noop : int64
+        Number of valid events that changed nothing (delete of a missing edge,
+        insert with the weight already present, seed with the same weight).
+    """
+    shift = counters[3]
+    n_prof = P.shape[0]
+    noop = 0
+    for i in range(op.shape[0]):
+        kind = op[i]
+        u = src[i]
+        v = dst[i]
+        if kind == OP_SEED:
+            change = wt[i] - S[v, u]
+            if change == 0.0:
+                noop += 1
+                continue
+            S[v, u] = wt[i]
+            R[v, u] += change
+            _mark(v, u, active, n_active, in_active)
+            continue
+        cell = find_cell(table, shift, e_src, e_dst, u, v)
+        if kind == OP_INSERT:
+            w_new = wt[i]
+            if cell >= 0:
+                e = table[cell]
+                w_old = e_w[e]
+                if w_old == w_new:
+                    noop += 1
+                    continue
+                e_w[e] = w_new
+            else:
+                w_old = 0.0
+                e = _alloc_slot(counters, e_src, e_next)
+                _link(head, e_src, e_dst, e_w, e_next, e_prev, e, u, v, w_new)
+                _hash_insert(table, shift, u, v, e)
+                out_degree[u] += 1
+                counters[2] += 1
+        else:
+            if cell < 0:
+                noop += 1
+                continue
+            e = table[cell]
+            w_old = e_w[e]
+            w_new = 0.0
+            _hash_remove(table, shift, e_src, e_dst, cell)
+            _unlink(head, e_src, e_next, e_prev, counters, e)
+            out_degree[u] -= 1
+            counters[2] -= 1
+        W_old = out_weight[u]
+        W_new = W_old + (w_new - w_old)
+        if out_degree[u] == 0 or W_new < 0.0:
+            W_new = 0.0  # exact zero for a dangling node, whatever the rounding
+        out_weight[u] = W_new
+        local = out_degree[u] <= local_max_degree
+        for k in range(n_prof):
+            if local:
+                _repair_neighbours(P, R, k, u, v, w_old, W_old, W_new, head, e_dst, e_w, e_next,
+                                   a, d, active, n_active, in_active)
+            else:
+                _repair_rescale(P, R, k, u, v, w_old, w_new, W_old, W_new, a, d,
+                                active, n_active, in_active)
+    return noop
+
+
+# ---------------------------------------------------------------- scheduling
+
+
+@njit(cache=True)
+def _done(rho, s_p, abs_p, tol):
+    """True when the certified bound on the normalised scores is within ``tol``.
+
+    Bound (see ``solver.metrics.certified_bound``):
+    ``rho * (1 + |p|_1 / sum p) / (sum p - rho)``.
+    """
+    if rho == 0.0:
+        return True
+    if s_p <= rho:
+        return False
+    return rho * (1.0 + abs_p / s_p) <= tol * (s_p - rho)
+
+
+@njit(cache=True)
+def _sweep(k, P, R, tmp, n, e_src, e_dst, e_w, top, out_weight, a, d):
+    """One global sweep: ``p += a r``, ``r = d P^T r`` (one pass over the slots)."""
+    for u in range(n):
+        ru = R[k, u]
+        P[k, u] += a * ru
+        W = out_weight[u]
+        tmp[u] = d * ru / W if W > 0.0 else 0.0
+        R[k, u] = 0.0
+    for e in range(top):
+        x = e_src[e]
+        if x >= 0:
+            R[k, e_dst[e]] += tmp[x] * e_w[e]
+    rho = 0.0
+    s_p = 0.0
+    abs_p = 0.0
+    for u in range(n):
+        rho += abs(R[k, u])
+        s_p += P[k, u]
+        abs_p += abs(P[k, u])
+    return rho, s_p, abs_p
+
+
+@njit(cache=True)
+def settle_profile(
+    k, tol, n, m,
+    head, out_weight, out_degree, e_src, e_dst, e_w, e_next, top,
+    P, R, a, d, active, n_active, in_active, queue, in_queue, tmp, sweep_share, stats,
+):
+    """Push profile ``k`` until its certified bound is at most ``tol``.
+
+    Local phases push, first-in first-out, every node whose residual exceeds
+    ``theta * max(deg, 1)``; ``theta`` halves between phases, so large residuals
+    go first and work stops as soon as the error budget is met (not when every
+    node is below a fixed threshold). When the nodes due in a phase carry more
+    than ``sweep_share * m`` out-edges, a global sweep is cheaper per unit of
+    residual removed than scattered pushes, and the kernel switches to sweeps
+    [3]. Forward push alone has bad worst cases on directed graphs; the switch
+    bounds each phase's cost by a constant number of sweeps.
+
+    ``stats`` accumulates: [0] pushes, [1] edges touched by pushes,
+    [2] sweeps, [3] edges touched by sweeps.
+    """
+    rho = 0.0
+    for i in range(n_active[k]):
+        rho += abs(R[k, active[k, i]])
+    s_p = 0.0
+    abs_p = 0.0
+    for u in range(n):
+        s_p += P[k, u]
+        abs_p += abs(P[k, u])
+    cap = queue.shape[0]
+    theta = 0.0
+    for i in range(n_active[k]):
+        u = active[k, i]
+        ratio = abs(R[k, u]) / max(out_degree[u], 1)
+        if ratio > theta:
+            theta = ratio
+    theta *= 0.5
+    sweeping = False
+    rounds = 0
+    while not _done(rho, s_p, abs_p, tol):
+        rounds += 1
+        if sweeping or rounds > 10_000:
+            rho, s_p, abs_p = _sweep(k, P, R, tmp, n, e_src, e_dst, e_w, top, out_weight, a, d)
+            stats[2] += 1
+            stats[3] += m
+            continue
+        # collect the nodes due in this phase
+        qh = 0
+        qt = 0
+        frontier = 0
+        for i in range(n_active[k]):
+            u = active[k, i]
+            if abs(R[k, u]) > theta * max(out_degree[u], 1) and not in_queue[u]:
+                in_queue[u] = True
+                queue[qt] = u
+                qt += 1
+                frontier += out_degree[u]
+        qt = qt % cap
+        if frontier > sweep_share * m:
+            for j in range(qt):
+                in_queue[queue[j]] = False
+            sweeping = True
+            continue
+        pending = qt
+        while pending > 0 and not _done(rho, s_p, abs_p, tol):
+            u = queue[qh]
+            qh = (qh + 1) % cap
+            pending -= 1
+            in_queue[u] = False
+            ru = R[k, u]
+            limit = theta * max(out_degree[u], 1)
+            if abs(ru) <= limit:
+                continue
+            old_p = P[k, u]
+            P[k, u] = old_p + a * ru
+            s_p += a * ru
+            abs_p += abs(old_p + a * ru) - abs(old_p)
+            R[k, u] = 0.0
+            rho -= abs(ru)
+            stats[0] += 1
+            W = out_weight[u]
+            if W <= 0.0:
+                continue
+            scale = d * ru / W
+            e = head[u]
+            while e >= 0:
+                v = e_dst[e]
+                before = R[k, v]
+                after = before + scale * e_w[e]
+                R[k, v] = after
+                rho += abs(after) - abs(before)
+                _mark(k, v, active, n_active, in_active)
+                if not in_queue[v] and abs(after) > theta * max(out_degree[v], 1):
+                    in_queue[v] = True
+                    queue[qt] = v
+                    qt = (qt + 1) % cap
+                    pending += 1
+                e = e_next[e]
+                stats[1] += 1
+        while pending > 0:
+            in_queue[queue[qh]] = False
+            qh = (qh + 1) % cap
+            pending -= 1
+        theta *= 0.5
+        if theta < 1e-300:
+            sweeping = True
+        # re-sum to shed the rounding of the running totals
+        rho = 0.0
+        for i in range(n_active[k]):
+            rho += abs(R[k, active[k, i]])
+    if sweeping:
+        # after sweeps every node may carry residual
+        n_active[k] = 0
+        for u in range(n):
+            in_active[k, u] = False
+            if R[k, u] != 0.0:
+                _mark(k, u, active, n_active, in_active)
+    return rho, s_p, abs_p
+
+
+@njit(cache=True)
+def exact_residual(k, n, P, S, e_src, e_dst, e_w, top, out_weight, a, d, out):
+    """``r = s - p/a + (d/a) P^T p`` recomputed from scratch into ``out``."""
+    for u in range(n):
+        out[u] = S[k, u] - P[k, u] / a
+    for e in range(top):
+        x = e_src[e]
+        if x >= 0:
+            out[e_dst[e]] += (d / a) * P[k, x] * e_w[e] / out_weight[x]
+
+
+@njit(cache=True)
+def compact_active(k, R, active, n_active, in_active):
+    """Drop nodes whose residual is exactly zero from profile ``k``'s active list."""
+    kept = 0
+    for i in range(n_active[k]):
+        u = active[k, i]
+        if R[k, u] != 0.0:
+            active[k, kept] = u
+            kept += 1
+        else:
+            in_active[k, u] = False
+    n_active[k] = kept

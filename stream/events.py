@@ -1,0 +1,286 @@
+"""The event format: parsing and validation of JSON Lines, Arrow and Parquet events.
+
+One event is a JSON object (design notes, section 5)::
+
+    {"op": "insert", "src": "a", "dst": "b", "weight": 2.5, "ts": 1733050000123}
+    {"op": "delete", "src": "a", "dst": "b"}
+    {"op": "seed", "profile": "trusted", "node": "a", "weight": 1.0}
+
+Every record becomes either a valid event or a *reject* with its row and a
+reason; nothing is dropped silently. Clean blocks of JSON Lines are parsed by
+Arrow's C++ JSON reader; a block that it refuses (a bad line, a number where a
+string was expected) is parsed line by line so that each bad line gets its own
+reason and every good line still counts.
+"""
+
+from __future__ import annotations
+
+import io
+import json
+import math
+from dataclasses import dataclass
+from datetime import datetime, timezone
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.json as pj
+
+from solver import GLOBAL, OP_DELETE, OP_INSERT, OP_SEED, EventBatch
+
+OPS = {"insert": OP_INSERT, "delete": OP_DELETE, "seed": OP_SEED}
+FIELDS = ("op", "src", "dst", "weight", "ts", "profile", "node")
+_STRING_FIELDS = ("op", "src", "dst", "profile", "node")
+_SCHEMA = pa.schema(
+    [(name, pa.string()) for name in _STRING_FIELDS] + [("weight", pa.float64()), ("ts", pa.int64())]
+)
+_PARSE_OPTIONS = pj.ParseOptions(explicit_schema=_SCHEMA, unexpected_field_behavior="ignore")
+
+
+@dataclass(frozen=True)
+class Limits:
+    """Caps that protect memory from hostile or broken input.
+
+    Attributes
+    ----------
+    max_id_length : int
+        Longest node id or profile name, in characters.
+    max_record_bytes : int
+        Longest JSON line or message, in bytes.
+    """
+
+    max_id_length: int = 1024
+    max_record_bytes: int = 1 << 20
+
+
+@dataclass
+class Parsed:
+    """Outcome of parsing one block of records.
+
+    Attributes
+    ----------
+    batch : EventBatch
+        The valid events, in input order.
+    valid_rows : int64 array
+        Input row of each valid event.
+    rejected_rows : int64 array
+        Input row of each reject.
+    reasons : list of str
+        Reason of each reject, aligned with ``rejected_rows``.
+    """
+
+    batch: EventBatch
+    valid_rows: np.ndarray
+    rejected_rows: np.ndarray
+    reasons: list[str]
+
+
+# ------------------------------------------------------------------ JSON Lines
+
+
+def parse_json_records(records: list[bytes], limits: Limits = Limits()) -> Parsed:
+    """Parse JSON records (lines or message values), one event each.
+
+    Parameters
+    ----------
+    records : list of bytes
+        One JSON object per item, without the line terminator.
+    limits : Limits
+        Id-length and record-size caps.
+    """
+    if not records:
+        return validate_table(pa.table({}), limits)
+    table = _fast_parse(records, limits)
+    if table is not None:
+        return validate_table(table, limits)
+    return _slow_parse(records, limits)
+
+
+def _fast_parse(records: list[bytes], limits: Limits) -> pa.Table | None:
+    """Arrow's JSON reader on the whole block, or None when the block needs care."""
+    blob = b"\n".join(records)
+    if len(blob) > len(records) * limits.max_record_bytes or b"\n\n" in blob or b"\r" in blob:
+        return None
+    if any(len(r) > limits.max_record_bytes for r in records) or not records[0].strip():
+        return None
+    try:
+        table = pj.read_json(io.BytesIO(blob + b"\n"), parse_options=_PARSE_OPTIONS)
+    except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+        return None
+    return table if table.num_rows == len(records) else None
+
+
+def _slow_parse(records: list[bytes], limits: Limits) -> Parsed:
+    """Line-by-line parse: each bad record gets its own reason."""
+    columns: dict[str, list] = {name: [] for name in FIELDS}
+    pre_reasons: list[str | None] = []
+    for raw in records:
+        fields, reason = _parse_one(raw, limits)
+        pre_reasons.append(reason)
+        for name in FIELDS:
+            columns[name].append(fields.get(name) if fields else None)
+    table = pa.table(
+        {
+            **{name: pa.array(columns[name], pa.string()) for name in _STRING_FIELDS},
+            "weight": pa.array(columns["weight"], pa.float64()),
+            "ts": pa.array(columns["ts"], pa.int64()),
+        }
+    )
+    return validate_table(table, limits, pre_reasons)
+
+
+def _parse_one(raw: bytes, limits: Limits) -> tuple[dict | None, str | None]:
+    """Decode one record into typed fields, or give the reason it is bad."""
+    if len(raw) > limits.max_record_bytes:
+        return None, f"record of {len(raw)} bytes exceeds the {limits.max_record_bytes}-byte limit"
+    try:
+        obj = json.loads(raw)
+    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
+        return None, f"not JSON: {exc}"
+    if not isinstance(obj, dict):
+        return None, f"not a JSON object but a {type(obj).__name__}"
+    fields: dict = {}
+    for name in _STRING_FIELDS:
+        if name in obj and obj[name] is not None:
+            text = _id_text(obj[name])
+            if text is None:
+                return None, f"field '{name}' must be a string or a number, got {type(obj[name]).__name__}"
+            fields[name] = text
+    if obj.get("weight") is not None:
+        w = obj["weight"]
+        if isinstance(w, bool) or not isinstance(w, (int, float)):
+            return None, f"weight must be a number, got {type(w).__name__}"
+        fields["weight"] = float(w) if abs(w) < 1e308 or isinstance(w, float) else math.inf
+    if obj.get("ts") is not None:
+        ts, reason = _ts_millis(obj["ts"])
+        if reason:
+            return None, reason
+        fields["ts"] = ts
+    return fields, None
+
+
+def _id_text(value) -> str | None:
+    """A node id as text: strings as they are, JSON numbers as their decimal text."""
+    if isinstance(value, str):
+        return value
+    if isinstance(value, bool):
+        return None
+    if isinstance(value, int):
+        return str(value)
+    if isinstance(value, float) and math.isfinite(value):
+        return repr(value)
+    return None
+
+
+def _ts_millis(value) -> tuple[int | None, str | None]:
+    """Milliseconds since the epoch from a number or ISO-8601 text."""
+    if isinstance(value, bool):
+        return None, "ts must be milliseconds since the epoch or ISO-8601 text"
+    if isinstance(value, (int, float)):
+        if not math.isfinite(value) or abs(value) > 1e16:
+            return None, f"ts {value!r} is out of range"
+        return int(value), None
+    if isinstance(value, str):
+        try:
+            stamp = datetime.fromisoformat(value.replace("Z", "+00:00"))
+        except ValueError:
+            return None, f"ts {value[:40]!r} is not ISO-8601 text"
+        if stamp.tzinfo is None:
+            stamp = stamp.replace(tzinfo=timezone.utc)
+        return int(stamp.timestamp() * 1000), None
+    return None, "ts must be milliseconds since the epoch or ISO-8601 text"
+
+
+# ------------------------------------------------------------------ validation
+
+
+def _column(table: pa.Table, name: str, typ: pa.DataType) -> pa.Array:
+    if name not in table.column_names:
+        return pa.nulls(table.num_rows, typ)
+    col = table.column(name)
+    col = col.combine_chunks() if isinstance(col, pa.ChunkedArray) else col
+    if pa.types.is_timestamp(col.type) and typ == pa.int64():
+        col = pc.cast(pc.cast(col, pa.timestamp("ms")), pa.int64())
+    elif pa.types.is_floating(col.type) and typ == pa.string():
+        col = pa.array([None if x is None else _id_text(x) for x in col.to_pylist()], pa.string())
+    return col if col.type == typ else pc.cast(col, typ)
+
+
+def validate_table(table: pa.Table, limits: Limits = Limits(), pre_reasons: list | None = None) -> Parsed:
+    """Validate event rows held in an Arrow table (vectorised).
+
+    Columns ``op, src, dst, weight, ts`` (and ``profile, node`` for seeds);
+    missing columns count as missing fields. ``pre_reasons`` carries reasons
+    already found while decoding (one per row, None for a row that decoded).
+    """
+    n = table.num_rows
+    reasons = np.array(pre_reasons if pre_reasons is not None else [None] * n, dtype=object)
+    op_text = _column(table, "op", pa.string())
+    src = _column(table, "src", pa.string())
+    dst = _column(table, "dst", pa.string())
+    profile = _column(table, "profile", pa.string())
+    node = _column(table, "node", pa.string())
+    # an absent or null weight means the default 1.0; an explicit NaN stays and is rejected
+    weight = pc.fill_null(_column(table, "weight", pa.float64()), 1.0).to_numpy(zero_copy_only=False)
+    ts = _column(table, "ts", pa.int64()).fill_null(-1).to_numpy(zero_copy_only=False)
+
+    op = np.full(n, -1, dtype=np.int8)
+    for name, code in OPS.items():
+        op[pc.fill_null(pc.equal(op_text, name), False).to_numpy(zero_copy_only=False)] = code
+    is_seed = op == OP_SEED
+    is_edge = (op == OP_INSERT) | (op == OP_DELETE)
+
+    def reject(mask: np.ndarray, reason) -> None:
+        rows = np.flatnonzero(mask & np.equal(reasons, None))
+        for i in rows:
+            reasons[i] = reason(i) if callable(reason) else reason
+
+    op_null = pc.is_null(op_text).to_numpy(zero_copy_only=False)
+    reject(op_null, "missing field 'op'")
+    op_values = op_text.to_pylist() if (op < 0).any() else None
+    reject(op < 0, lambda i: f"unknown op {str(op_values[i])[:40]!r} (expected insert, delete or seed)")
+    for name, col, mask in (("src", src, is_edge), ("dst", dst, is_edge), ("profile", profile, is_seed), ("node", node, is_seed)):
+        null = pc.is_null(col).to_numpy(zero_copy_only=False)
+        reject(mask & null, f"missing field '{name}'")
+        length = pc.fill_null(pc.utf8_length(col), 0).to_numpy(zero_copy_only=False)
+        reject(mask & (length > limits.max_id_length), f"{name} longer than {limits.max_id_length} characters")
+        reject(mask & (length == 0) & ~null, f"{name} is empty")
+    with np.errstate(invalid="ignore"):
+        bad_edge_w = (op == OP_INSERT) & ~(np.isfinite(weight) & (weight > 0))
+        bad_seed_w = is_seed & ~(np.isfinite(weight) & (weight >= 0))
+    reject(bad_edge_w, lambda i: f"weight must be a finite number > 0, got {float(weight[i])!r}")
+    reject(bad_seed_w, lambda i: f"seed weight must be a finite number >= 0, got {float(weight[i])!r}")
+    profile_is_global = pc.fill_null(pc.equal(profile, GLOBAL), False).to_numpy(zero_copy_only=False)
+    reject(is_seed & profile_is_global, "the global profile teleports uniformly; seed a named profile")
+
+    ok = np.equal(reasons, None)
+    rows = np.flatnonzero(ok)
+    take = pa.array(rows)
+    seed_ok = is_seed[rows]
+    batch = EventBatch(
+        op[rows],
+        pc.if_else(pa.array(seed_ok), node.take(take), src.take(take)),
+        pc.if_else(pa.array(seed_ok), profile.take(take), dst.take(take)),
+        weight[rows].astype(np.float64),
+        ts[rows].astype(np.int64),
+    )
+    bad = np.flatnonzero(~ok)
+    return Parsed(batch, rows.astype(np.int64), bad.astype(np.int64), [str(reasons[i]) for i in bad])
+
+
+def events_to_table(batch: EventBatch) -> pa.Table:
+    """The wire columns of a batch (inverse of :func:`validate_table` on valid rows)."""
+    is_seed = pa.array(batch.op == OP_SEED)
+    names = np.array(["insert", "delete", "seed"], dtype=object)[batch.op]
+    nulls = pa.nulls(len(batch), pa.string())
+    return pa.table(
+        {
+            "op": pa.array(names, pa.string()),
+            "src": pc.if_else(is_seed, nulls, batch.src),
+            "dst": pc.if_else(is_seed, nulls, batch.dst),
+            "weight": pa.array(batch.weight),
+            "ts": pa.array(batch.ts, pa.int64(), mask=batch.ts < 0),
+            "profile": pc.if_else(is_seed, batch.dst, nulls),
+            "node": pc.if_else(is_seed, batch.src, nulls),
+        }
+    )

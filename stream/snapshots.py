@@ -1,0 +1,320 @@
+"""Parquet snapshots: atomic write, checksum-verified load, pruning.
+
+Layout (design notes, section 6)::
+
+    ROOT/snap-00000007/
+        scores.parquet    node, profile, score (sums to 1 per profile)
+        edges.parquet     src, dst, weight
+        seeds.parquet     profile, node, weight (teleport weights of personalizations)
+        manifest.json     format, sequence, damping, tolerance, certified_bound, ...
+
+A snapshot is written into ``ROOT/.snap-00000007.partial``, every file and the
+folder are fsynced, and only then is the folder renamed to its final name (an
+atomic step on POSIX file systems) and the root fsynced. A reader therefore
+never sees a half snapshot under a ``snap-`` name; a ``.partial`` folder left
+by a crash is ignored and removed by the next write.
+
+``seeds.parquet`` and the manifest's ``profiles`` key (the sum of each
+profile's unnormalised estimate) go beyond the design notes: they are what a
+restart needs to rebuild the personalizations and the estimate ``p`` exactly.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import logging
+import os
+import re
+import shutil
+from dataclasses import dataclass, field
+from datetime import datetime, timezone
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from solver import GLOBAL, Ranker
+from solver.ids import NodeIds
+
+FORMAT = 1
+_NAME = re.compile(r"^snap-(\d{8})$")
+log = logging.getLogger("ranktide.snapshots")
+
+
+class SnapshotError(RuntimeError):
+    """A snapshot could not be written or read; the message says where and why."""
+
+
+@dataclass
+class Counters:
+    """Event counts carried from snapshot to snapshot."""
+
+    events_applied: int = 0
+    events_noop: int = 0
+    events_rejected: int = 0
+
+    def as_dict(self) -> dict[str, int]:
+        return {
+            "events_applied": self.events_applied,
+            "events_noop": self.events_noop,
+            "events_rejected": self.events_rejected,
+        }
+
+
+@dataclass
+class Snapshot:
+    """A loaded snapshot: the rebuilt ranker, its manifest and folder."""
+
+    ranker: Ranker
+    manifest: dict
+    path: Path
+    counters: Counters = field(default_factory=Counters)
+
+
+# ------------------------------------------------------------------ listing
+
+
+def snapshot_dirs(root: Path) -> list[Path]:
+    """Complete snapshot folders under ``root``, oldest first."""
+    root = Path(root)
+    if not root.is_dir():
+        return []
+    found = [(int(m.group(1)), p) for p in root.iterdir() if (m := _NAME.match(p.name)) and p.is_dir()]
+    return [p for _, p in sorted(found)]
+
+
+def next_sequence(root: Path) -> int:
+    dirs = snapshot_dirs(root)
+    return int(_NAME.match(dirs[-1].name).group(1)) + 1 if dirs else 1
+
+
+# ------------------------------------------------------------------ writing
+
+
+def _sha256(path: Path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 20), b""):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+def _fsync_file(path: Path) -> None:
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def _fsync_dir(path: Path) -> None:
+    fd = os.open(path, os.O_RDONLY | os.O_DIRECTORY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def _tables(ranker: Ranker) -> dict[str, pa.Table]:
+    eng = ranker.engine
+    names = ranker.node_names()
+    n = eng.n_nodes
+    node_cols, prof_cols, score_cols = [], [], []
+    seed_node, seed_prof, seed_w = [], [], []
+    for name in eng.profiles:
+        sc = eng.scores(name)
+        keep = np.arange(n) if name == GLOBAL else np.flatnonzero(sc)
+        node_cols.append(names.take(pa.array(keep)))
+        prof_cols.append(pa.array(np.full(keep.size, name, dtype=object), pa.string()))
+        score_cols.append(pa.array(sc[keep]))
+        if name != GLOBAL:
+            s = eng.teleport_vector(name)
+            seeded = np.flatnonzero(s)
+            seed_node.append(names.take(pa.array(seeded)))
+            seed_prof.append(pa.array(np.full(seeded.size, name, dtype=object), pa.string()))
+            seed_w.append(pa.array(s[seeded]))
+    src, dst, w = eng.graph.edge_list()
+    order = np.lexsort((dst, src))  # a stable, readable order
+    empty = pa.array([], pa.string())
+    return {
+        "scores.parquet": pa.table(
+            {
+                "node": pa.concat_arrays(node_cols),
+                "profile": pa.concat_arrays(prof_cols),
+                "score": pa.concat_arrays(score_cols).cast(pa.float64()),
+            }
+        ),
+        "edges.parquet": pa.table(
+            {
+                "src": names.take(pa.array(src[order])),
+                "dst": names.take(pa.array(dst[order])),
+                "weight": pa.array(w[order]),
+            }
+        ),
+        "seeds.parquet": pa.table(
+            {
+                "profile": pa.concat_arrays(seed_prof) if seed_prof else empty,
+                "node": pa.concat_arrays(seed_node) if seed_node else empty,
+                "weight": pa.concat_arrays(seed_w).cast(pa.float64()) if seed_w else pa.array([], pa.float64()),
+            }
+        ),
+    }
+
+
+def write_snapshot(
+    root: Path,
+    ranker: Ranker,
+    counters: Counters,
+    positions: dict,
+    sequence: int | None = None,
+    created_at: datetime | None = None,
+) -> Path:
+    """Write a complete snapshot of ``ranker`` atomically and return its folder.
+
+    The residual is recomputed exactly first and the engine settled again, so
+    the manifest's ``certified_bound`` is the bound of what the files hold.
+
+    Raises
+    ------
+    SnapshotError
+        When the root cannot be created or written (permissions, full disk);
+        no ``snap-`` folder is left behind in that case.
+    """
+    root = Path(root)
+    try:
+        root.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise SnapshotError(f"cannot create snapshot root {root}: {exc.strerror or exc}") from exc
+    seq = next_sequence(root) if sequence is None else int(sequence)
+    final = root / f"snap-{seq:08d}"
+    partial = root / f".snap-{seq:08d}.partial"
+    eng = ranker.engine
+    eng.recompute_residual()
+    eng.settle()
+    try:
+        _clear_partials(root)
+        partial.mkdir()
+        files = {}
+        for fname, table in _tables(ranker).items():
+            pq.write_table(table, partial / fname, compression="zstd")
+            _fsync_file(partial / fname)
+            files[fname] = _sha256(partial / fname)
+        manifest = {
+            "format": FORMAT,
+            "sequence": seq,
+            "damping": eng.damping,
+            "tolerance": eng.tolerance,
+            "certified_bound": {name: eng.certified_bound(name) for name in eng.profiles},
+            **counters.as_dict(),
+            "positions": positions,
+            "created_at": (created_at or datetime.now(timezone.utc)).isoformat(timespec="milliseconds"),
+            "nodes": eng.n_nodes,
+            "edges": eng.n_edges,
+            "profiles": {
+                name: {"estimate_sum": float(eng.P[k, : eng.n_nodes].sum())} for k, name in enumerate(eng.profiles)
+            },
+            "files": files,
+        }
+        with open(partial / "manifest.json", "w", encoding="utf-8") as fh:
+            json.dump(manifest, fh, indent=2, sort_keys=True)
+            fh.write("\n")
+            fh.flush()
+            os.fsync(fh.fileno())
+        _fsync_dir(partial)
+        os.rename(partial, final)
+        _fsync_dir(root)
+    except OSError as exc:
+        shutil.rmtree(partial, ignore_errors=True)
+        raise SnapshotError(f"cannot write snapshot {final}: {exc.strerror or exc}") from exc
+    return final
+
+
+def _clear_partials(root: Path) -> None:
+    for p in root.glob(".snap-*.partial"):
+        shutil.rmtree(p, ignore_errors=True)
+
+
+def prune(root: Path, keep: int) -> list[Path]:
+    """Delete all but the newest ``keep`` snapshots; return what was removed."""
+    dirs = snapshot_dirs(root)
+    doomed = dirs[: max(len(dirs) - max(int(keep), 1), 0)]
+    for p in doomed:
+        shutil.rmtree(p, ignore_errors=True)
+    return doomed
+
+
+# ------------------------------------------------------------------ reading
+
+
+def read_manifest(path: Path) -> dict:
+    """The manifest of snapshot folder ``path``."""
+    try:
+        with open(Path(path) / "manifest.json", encoding="utf-8") as fh:
+            return json.load(fh)
+    except (OSError, json.JSONDecodeError) as exc:
+        raise SnapshotError(f"{path}: unreadable manifest.json: {exc}") from exc
+
+
+def verify(path: Path, manifest: dict) -> None:
+    """Check every file against the manifest's sha256; raise SnapshotError on a mismatch."""
+    for fname, digest in manifest.get("files", {}).items():
+        f = Path(path) / fname
+        if not f.is_file():
+            raise SnapshotError(f"{path}: {fname} is missing")
+        if _sha256(f) != digest:
+            raise SnapshotError(f"{path}: {fname} fails its sha256 checksum")
+
+
+def load_snapshot(path: Path, check: bool = True) -> Snapshot:
+    """Rebuild a ranker from snapshot folder ``path`` (residual recomputed exactly)."""
+    path = Path(path)
+    manifest = read_manifest(path)
+    if manifest.get("format") != FORMAT:
+        raise SnapshotError(f"{path}: snapshot format {manifest.get('format')!r}, this version reads {FORMAT}")
+    if check:
+        verify(path, manifest)
+    try:
+        scores = pq.read_table(path / "scores.parquet")
+        edges = pq.read_table(path / "edges.parquet")
+        seeds = pq.read_table(path / "seeds.parquet")
+    except (OSError, pa.ArrowException) as exc:
+        raise SnapshotError(f"{path}: unreadable Parquet file: {exc}") from exc
+    ranker = Ranker(damping=manifest["damping"], tolerance=manifest["tolerance"])
+    glob = scores.filter(pa.compute.equal(scores["profile"], GLOBAL))
+    ranker.ids = NodeIds(glob["node"].to_pylist())
+    n = len(ranker.ids)
+    estimates, teleports = {}, {}
+    for name, info in manifest["profiles"].items():
+        part = scores.filter(pa.compute.equal(scores["profile"], name))
+        p = np.zeros(n)
+        p[ranker.ids.intern(part["node"].combine_chunks())] = part["score"].to_numpy() * info["estimate_sum"]
+        estimates[name] = p
+        sd = seeds.filter(pa.compute.equal(seeds["profile"], name))
+        s = np.zeros(n)
+        s[ranker.ids.intern(sd["node"].combine_chunks())] = sd["weight"].to_numpy()
+        teleports[name] = s
+    if len(ranker.ids) != n:
+        raise SnapshotError(f"{path}: scores or seeds name nodes missing from the global profile")
+    src = ranker.ids.intern(edges["src"].combine_chunks())
+    dst = ranker.ids.intern(edges["dst"].combine_chunks())
+    if len(ranker.ids) != n:
+        raise SnapshotError(f"{path}: edges.parquet names nodes missing from scores.parquet")
+    ranker.engine.restore(n, (src, dst, edges["weight"].to_numpy()), estimates, teleports)
+    counters = Counters(manifest["events_applied"], manifest["events_noop"], manifest["events_rejected"])
+    return Snapshot(ranker, manifest, path, counters)
+
+
+def load_latest(root: Path) -> Snapshot | None:
+    """The newest snapshot that passes its checks, or None when there is none.
+
+    A snapshot that fails its checksum or cannot be read is skipped with a
+    warning in favour of the one before it.
+    """
+    for path in reversed(snapshot_dirs(root)):
+        try:
+            return load_snapshot(path)
+        except SnapshotError as exc:
+            log.warning("skipping snapshot: %s", exc)
+    return None
