@@ -39,7 +39,10 @@ GLOBAL = "global"
 #: A sweep costs one pass over all slots; pushing a frontier that touches more
 #: than this share of the edges costs more (random access, queue upkeep) than
 #: a sweep that removes at least as much residual.
-SWEEP_SHARE = 0.25
+SWEEP_SHARE = 0.05
+
+#: Factor by which the push threshold falls between local phases.
+THETA_STEP = 0.5
 
 
 @dataclass
@@ -50,6 +53,7 @@ class SettleStats:
     push_edges: int = 0
     sweeps: int = 0
     sweep_edges: int = 0
+    phases: int = 0
 
     @property
     def edge_touches(self) -> int:
@@ -60,6 +64,7 @@ class SettleStats:
         self.push_edges += other.push_edges
         self.sweeps += other.sweeps
         self.sweep_edges += other.sweep_edges
+        self.phases += other.phases
 
 
 class Engine:
@@ -211,7 +216,7 @@ class Engine:
         tol = self.tolerance if tolerance is None else float(tolerance)
         total = SettleStats()
         g = self.graph.arrays
-        stats = np.zeros(4, dtype=np.int64)
+        stats = np.zeros(5, dtype=np.int64)
         for k in range(len(self.profiles)):
             stats[:] = 0
             kernels.settle_profile(
@@ -220,7 +225,7 @@ class Engine:
                 int(g.counters[0]),
                 self.P, self.R, self.teleport, self.damping,
                 self._active, self._n_active, self._in_active,
-                self._queue, self._in_queue, self._tmp, SWEEP_SHARE, stats,
+                self._queue, self._in_queue, self._tmp, SWEEP_SHARE, THETA_STEP, stats,
             )
             kernels.compact_active(k, self.R, self._active, self._n_active, self._in_active)
             total.add(SettleStats(*(int(x) for x in stats)))
@@ -298,6 +303,24 @@ class Engine:
         PT = transition_transpose(src, dst, w, n)
         x0 = self.P[k, :n] if warm else None
         return solve(PT, self.S[k, :n], self.damping, tol, x0=x0).scores
+
+    def resolve(self, tol: float = 1e-12, warm: bool = True) -> int:
+        """Set every profile's estimate to an exact solve (``tol``) and recompute residuals.
+
+        A full recompute: used to start from a bulk-loaded graph and by
+        operators who want the residual near zero. Returns the iterations used.
+        """
+        n = self.n_nodes
+        src, dst, w = self.graph.edge_list()
+        PT = transition_transpose(src, dst, w, n)
+        iterations = 0
+        for k in range(len(self.profiles)):
+            x0 = self.P[k, :n] if warm and self.P[k, :n].any() else None
+            sol = solve(PT, self.S[k, :n], self.damping, tol, x0=x0)
+            self.P[k, :n] = sol.x
+            iterations += sol.iterations
+        self.recompute_residual()
+        return iterations
 
     # ------------------------------------------------------------ reading
     def certified_bound(self, profile: str = GLOBAL) -> float:

@@ -108,7 +108,7 @@ class DynamicGraph:
     def __init__(self, node_capacity: int = 1024, edge_capacity: int = 4096) -> None:
         node_capacity = max(int(node_capacity), 16)
         edge_capacity = max(int(edge_capacity), 16)
-        bits = _table_bits(edge_capacity)
+        bits = _table_bits(int(edge_capacity / MAX_LOAD) + 1)
         self.arrays = GraphArrays(
             out_weight=np.zeros(node_capacity, dtype=np.float64),
             out_degree=np.zeros(node_capacity, dtype=np.int32),
@@ -169,7 +169,7 @@ class DynamicGraph:
 
     def _rehash(self, n_edges: int) -> None:
         a = self.arrays
-        bits = _table_bits(int(n_edges / (MAX_LOAD / 2)) + 1)
+        bits = _table_bits(int(n_edges / MAX_LOAD) + 1)
         a.table = np.full(1 << bits, _EMPTY, dtype=np.int32)
         a.counters[3] = 64 - bits
         rebuild_hash(a.table, int(a.counters[3]), a.src, a.dst, int(a.counters[0]))

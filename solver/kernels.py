@@ -326,7 +326,7 @@ def _sweep(k, P, R, tmp, n, e_src, e_dst, e_w, top, out_weight, a, d):
 def settle_profile(
     k, tol, n, m,
     head, out_weight, out_degree, e_src, e_dst, e_w, e_next, top,
-    P, R, a, d, active, n_active, in_active, queue, in_queue, tmp, sweep_share, stats,
+    P, R, a, d, active, n_active, in_active, queue, in_queue, tmp, sweep_share, theta_step, stats,
 ):
     """Push profile ``k`` until its certified bound is at most ``tol``.
 
@@ -340,7 +340,7 @@ def settle_profile(
     bounds each phase's cost by a constant number of sweeps.
 
     ``stats`` accumulates: [0] pushes, [1] edges touched by pushes,
-    [2] sweeps, [3] edges touched by sweeps.
+    [2] sweeps, [3] edges touched by sweeps, [4] local phases.
     """
     rho = 0.0
     for i in range(n_active[k]):
@@ -378,7 +378,8 @@ def settle_profile(
                 queue[qt] = u
                 qt += 1
                 frontier += out_degree[u]
-        qt = qt % cap
+        if qt == cap:
+            qt = 0
         if frontier > sweep_share * m:
             for j in range(qt):
                 in_queue[queue[j]] = False
@@ -387,7 +388,9 @@ def settle_profile(
         pending = qt
         while pending > 0 and not _done(rho, s_p, abs_p, tol):
             u = queue[qh]
-            qh = (qh + 1) % cap
+            qh += 1
+            if qh == cap:
+                qh = 0
             pending -= 1
             in_queue[u] = False
             ru = R[k, u]
@@ -416,15 +419,20 @@ def settle_profile(
                 if not in_queue[v] and abs(after) > theta * max(out_degree[v], 1):
                     in_queue[v] = True
                     queue[qt] = v
-                    qt = (qt + 1) % cap
+                    qt += 1
+                    if qt == cap:
+                        qt = 0
                     pending += 1
                 e = e_next[e]
                 stats[1] += 1
         while pending > 0:
             in_queue[queue[qh]] = False
-            qh = (qh + 1) % cap
+            qh += 1
+            if qh == cap:
+                qh = 0
             pending -= 1
-        theta *= 0.5
+        theta *= theta_step
+        stats[4] += 1
         if theta < 1e-300:
             sweeping = True
         # re-sum to shed the rounding of the running totals
