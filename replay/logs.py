@@ -46,6 +46,8 @@ class LogChunk:
         Byte offset (JSON Lines) or row number of every input record.
     end_offset : int
         Where reading resumes after this chunk (bytes or rows).
+    end_line : int
+        Lines (or rows) fully read once this chunk is consumed.
     raw : callable
         ``raw(i)`` gives the text of input record ``i`` (for the rejects file).
     """
@@ -54,6 +56,7 @@ class LogChunk:
     lines: np.ndarray
     offsets: np.ndarray
     end_offset: int
+    end_line: int
     raw: callable
 
 
@@ -132,16 +135,15 @@ def _read_jsonl(path: Path, limits: Limits, offset: int, line_no: int, follow_pa
                     carry = data
                     continue
             body, carry = data[:cut], data[cut:]
-            chunk = _jsonl_chunk(body, offset, line_no, limits)
-            if chunk is not None:
-                yield chunk
-            line_no += body.count(b"\n") + (0 if body.endswith(b"\n") else 1)
+            lines_in_body = body.count(b"\n") + (0 if body.endswith(b"\n") else 1)
+            yield _jsonl_chunk(body, offset, line_no, line_no - 1 + lines_in_body, limits)
+            line_no += lines_in_body
             offset += len(body)
             if at_end:
                 return
 
 
-def _jsonl_chunk(body: bytes, offset: int, line_no: int, limits: Limits) -> LogChunk | None:
+def _jsonl_chunk(body: bytes, offset: int, line_no: int, end_line: int, limits: Limits) -> LogChunk:
     text = body[:-1] if body.endswith(b"\n") else body
     records = text.split(b"\n")
     starts = np.concatenate(([0], np.flatnonzero(np.frombuffer(text, np.uint8) == 10) + 1)).astype(np.int64)
@@ -152,15 +154,13 @@ def _jsonl_chunk(body: bytes, offset: int, line_no: int, limits: Limits) -> LogC
         records = [records[i] for i in keep]
     else:
         keep = np.arange(len(records))
-    end = offset + len(body)
-    if not records:
-        return None
     parsed = parse_json_records(records, limits)
     return LogChunk(
         parsed,
         line_no + keep.astype(np.int64),
         offset + starts[keep],
-        end,
+        offset + len(body),
+        end_line,
         lambda i: records[i].decode("utf-8", "replace"),
     )
 
@@ -174,7 +174,8 @@ def _table_chunk(table: pa.Table, first_row: int, limits: Limits, first_line: in
     def raw(i: int) -> str:
         return json.dumps(table.slice(i, 1).to_pylist()[0], default=str)
 
-    return LogChunk(parsed, first_line + rows, first_row + rows, first_row + table.num_rows, raw)
+    end = first_row + table.num_rows
+    return LogChunk(parsed, first_line + rows, first_row + rows, end, end, raw)
 
 
 def _decode_text_columns(table: pa.Table) -> tuple[pa.Table, list | None]:

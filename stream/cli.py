@@ -71,6 +71,68 @@ def _cmd_replay(args: argparse.Namespace) -> int:
     return 0
 
 
+class _JsonFormatter(logging.Formatter):
+    def format(self, record: logging.LogRecord) -> str:
+        entry = {"time": self.formatTime(record), "level": record.levelname, "logger": record.name,
+                 "message": record.getMessage()}
+        if record.exc_info:
+            entry["error"] = self.formatException(record.exc_info)
+        return json.dumps(entry)
+
+
+def _cmd_run(args: argparse.Namespace) -> int:
+    from replay.logs import LogError
+    from stream.config import ConfigError, load_config
+    from stream.service import Service
+    from stream.snapshots import SnapshotError
+
+    overrides = {
+        "source": args.source, "out": args.out, "group": args.group, "tolerance": args.tolerance,
+        "damping": args.damping, "snapshot_interval": args.snapshot_interval,
+        "keep_snapshots": args.keep_snapshots, "micro_batch": args.micro_batch,
+        "rejects": f"kafka:{args.rejects_topic}" if args.rejects_topic else (f"file:{args.rejects}" if args.rejects else None),
+        "score_topic": args.score_topic, "metrics": args.metrics,
+        "log_format": "json" if args.log_json else None, "stop_at_end": True if args.stop_at_end else None,
+        "max_id_length": args.max_id_length, "max_message_bytes": args.max_message_bytes,
+    }
+    if args.personalization:
+        overrides["personalizations"] = {k: str(v) for k, v in args.personalization}
+    try:
+        if not (args.source or args.config or "RANKTIDE_SOURCE" in __import__("os").environ):
+            overrides.update(_embedded_default(args))
+        cfg = load_config(args.config, overrides=overrides)
+    except ConfigError as exc:
+        print(f"ranktide run: error: {exc}", file=sys.stderr)
+        return 2
+    if cfg.log_format == "json":
+        for handler in logging.getLogger().handlers:
+            handler.setFormatter(_JsonFormatter())
+    service = Service(cfg)
+    service.install_signal_handlers()
+    try:
+        code = service.run()
+    except (LogError, SnapshotError) as exc:
+        print(f"ranktide run: error: {exc}", file=sys.stderr)
+        return 2
+    if code == 0 and not args.quiet:
+        from replay.reading import describe_newest
+
+        describe_newest(Path(cfg.out))
+    return code
+
+
+def _embedded_default(args: argparse.Namespace) -> dict:
+    """No source named: run the built-in scenario from a file source, to its end."""
+    from replay.scenario import write_scenario
+
+    out = Path(args.out or "ranktide-out")
+    log_path = out / "scenario" / "events.jsonl"
+    if not log_path.exists():
+        write_scenario(log_path.parent)
+    print(f"ranktide run: no --source given: running the built-in scenario from file:{log_path}", file=sys.stderr)
+    return {"source": f"file:{log_path}", "out": str(out), "stop_at_end": True}
+
+
 def _cmd_status(args: argparse.Namespace) -> int:
     from replay.reading import describe_newest
 
@@ -105,7 +167,7 @@ def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="ranktide", description=DESCRIPTION, formatter_class=argparse.RawDescriptionHelpFormatter
     )
-    parser.add_argument("--log-level", default="WARNING", help="logging level (DEBUG, INFO, WARNING, ERROR)")
+    parser.add_argument("--log-level", default="INFO", help="logging level (DEBUG, INFO, WARNING, ERROR; default INFO)")
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
     p = sub.add_parser("replay", help="replay a recorded event log into a snapshot",
@@ -121,6 +183,39 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--micro-batch", type=int, default=50_000, help="events applied between settles (default 50000)")
     p.add_argument("--quiet", action="store_true", help="print nothing but errors")
     p.set_defaults(func=_cmd_replay)
+
+    p = sub.add_parser("run", help="the long-lived consumer: Kafka or files in, fresh scores and snapshots out",
+                       formatter_class=argparse.RawDescriptionHelpFormatter,
+                       description="Consume edge events, keep every profile within the tolerance, write a snapshot "
+                                   "every --snapshot-interval seconds and commit source positions after each durable "
+                                   "snapshot. On restart it resumes from the newest good snapshot: every event is "
+                                   "reflected exactly once. SIGTERM or SIGINT finish the batch, write a final "
+                                   "snapshot and exit 0.",
+                       epilog="SOURCE is kafka://HOST:PORT[,HOST:PORT...]/TOPIC[,TOPIC...] or file:PATH (a JSON "
+                              "Lines file or a folder of them, followed as they grow). Without --source (and no "
+                              "source in the configuration) it runs the built-in scenario from a file.\n"
+                              "Settings come from --config FILE (TOML), then RANKTIDE_* environment variables, "
+                              "then these options.")
+    p.add_argument("--source", help="kafka://HOST:PORT/TOPIC or file:PATH")
+    p.add_argument("--out", help="snapshot root folder (default ranktide-out)")
+    p.add_argument("--group", help="Kafka consumer group (default ranktide)")
+    add_engine_options(p)
+    p.add_argument("--snapshot-interval", type=_positive_float, help="seconds between snapshots (default 60)")
+    p.add_argument("--keep-snapshots", type=int, help="snapshots kept, older ones pruned (default 5)")
+    p.add_argument("--config", type=Path, help="TOML configuration file")
+    p.add_argument("--micro-batch", type=int, help="events applied between settles (default 50000)")
+    p.add_argument("--rejects", type=Path, help="rejects file (default ROOT/rejects.jsonl)")
+    p.add_argument("--rejects-topic", help="send rejects to this Kafka topic instead of a file")
+    p.add_argument("--score-topic", help="Kafka topic for the score-change feed (log-compacted, keyed profile/node)")
+    p.add_argument("--metrics", help="HOST:PORT of the Prometheus text endpoint (default 127.0.0.1:9464; '' disables)")
+    p.add_argument("--max-id-length", type=int, help="longest node id accepted, in characters (default 1024)")
+    p.add_argument("--max-message-bytes", type=int, help="largest record accepted, in bytes (default 1048576)")
+    p.add_argument("--personalization", action="append", type=_personalization, metavar="NAME=SEEDS_FILE",
+                   help="personalized profile seeded from a file when starting without a snapshot; may be repeated")
+    p.add_argument("--stop-at-end", action="store_true", help="stop with a final snapshot when the source has no more")
+    p.add_argument("--log-json", action="store_true", help="structured logs, one JSON object per line")
+    p.add_argument("--quiet", action="store_true", help="do not describe the final snapshot")
+    p.set_defaults(func=_cmd_run)
 
     p = sub.add_parser("status", help="describe the newest snapshot in words")
     p.add_argument("root", type=Path, help="snapshot root folder")

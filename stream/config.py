@@ -1,0 +1,199 @@
+"""Service configuration: TOML file, then ``RANKTIDE_*`` environment, then command line.
+
+A configuration file looks like::
+
+    source = "kafka://broker1:9092,broker2:9092/edges"
+    out = "/var/lib/ranktide"
+    group = "ranktide"
+    tolerance = 1e-6
+    snapshot_interval = 60
+
+    [kafka]                      # any librdkafka property, passed through
+    "security.protocol" = "SASL_SSL"
+    "sasl.mechanism" = "PLAIN"
+    "sasl.username" = "ranker"
+    "sasl.password" = "..."      # never logged nor written to snapshots
+
+Environment variables override the file: ``RANKTIDE_TOLERANCE=1e-7``,
+``RANKTIDE_SNAPSHOT_INTERVAL=30``; ``RANKTIDE_KAFKA_SASL_PASSWORD=...`` sets
+the librdkafka property ``sasl.password`` (underscores become dots).
+Command-line options override both.
+"""
+
+from __future__ import annotations
+
+import os
+import tomllib
+from dataclasses import dataclass, field, fields
+from pathlib import Path
+
+#: Substrings of property names whose values are secrets.
+SECRET_MARKERS = ("password", "secret", "key", "token", "credential", "jaas")
+
+
+class ConfigError(ValueError):
+    """A configuration value is missing or wrong; the message names it."""
+
+
+@dataclass
+class ServiceConfig:
+    """Every setting of ``ranktide run``.
+
+    Attributes
+    ----------
+    source : str
+        ``kafka://HOST:PORT[,HOST:PORT...]/TOPIC[,TOPIC...]`` or ``file:PATH``.
+    out : str
+        Snapshot root folder.
+    group : str
+        Kafka consumer group.
+    tolerance, damping : float
+        Engine parameters.
+    snapshot_interval : float
+        Seconds between snapshots (offsets are committed with each one).
+    keep_snapshots : int
+        How many snapshots to keep; older ones are pruned.
+    micro_batch : int
+        Events applied between two settles.
+    poll_records : int
+        Largest number of messages taken from the source in one poll.
+    rejects : str
+        Where rejects go: ``file:PATH`` (default ``OUT/rejects.jsonl``) or
+        ``kafka:TOPIC``.
+    max_id_length, max_message_bytes : int
+        Input caps.
+    score_topic : str
+        Kafka topic for the score-change feed; empty disables it.
+    score_threshold : float
+        Relative change that makes a node's score due on the feed.
+    score_interval : float
+        Seconds between two feed rounds.
+    metrics : str
+        ``HOST:PORT`` for the Prometheus text endpoint; empty disables it.
+    log_format : str
+        ``text`` or ``json``.
+    stop_at_end : bool
+        Stop (with a final snapshot) once the source has nothing more.
+    personalizations : dict
+        Profile name -> seeds file, applied when starting from no snapshot.
+    kafka : dict
+        librdkafka properties passed through to every client.
+    """
+
+    source: str = ""
+    out: str = "ranktide-out"
+    group: str = "ranktide"
+    tolerance: float = 1e-6
+    damping: float = 0.85
+    snapshot_interval: float = 60.0
+    keep_snapshots: int = 5
+    micro_batch: int = 50_000
+    poll_records: int = 100_000
+    rejects: str = ""
+    max_id_length: int = 1024
+    max_message_bytes: int = 1 << 20
+    score_topic: str = ""
+    score_threshold: float = 0.01
+    score_interval: float = 5.0
+    metrics: str = "127.0.0.1:9464"
+    log_format: str = "text"
+    stop_at_end: bool = False
+    personalizations: dict[str, str] = field(default_factory=dict)
+    kafka: dict[str, str] = field(default_factory=dict)
+
+    def validate(self) -> "ServiceConfig":
+        if not self.source:
+            raise ConfigError("source is required (kafka://HOST:PORT/TOPIC or file:PATH)")
+        if not (self.source.startswith("kafka://") or self.source.startswith("file:")):
+            raise ConfigError(f"source {self.source!r}: expected kafka://HOST:PORT/TOPIC or file:PATH")
+        if not 0 < self.damping < 1:
+            raise ConfigError(f"damping must lie strictly between 0 and 1, got {self.damping}")
+        if not self.tolerance > 0:
+            raise ConfigError(f"tolerance must be > 0, got {self.tolerance}")
+        if not self.snapshot_interval > 0:
+            raise ConfigError(f"snapshot_interval must be > 0 seconds, got {self.snapshot_interval}")
+        if self.keep_snapshots < 1:
+            raise ConfigError(f"keep_snapshots must be at least 1, got {self.keep_snapshots}")
+        if self.log_format not in ("text", "json"):
+            raise ConfigError(f"log_format must be text or json, got {self.log_format!r}")
+        return self
+
+    def redacted(self) -> dict:
+        """The settings with secret values replaced, for logs."""
+        out = {f.name: getattr(self, f.name) for f in fields(self)}
+        out["kafka"] = redact(self.kafka)
+        return out
+
+
+def redact(props: dict[str, str]) -> dict[str, str]:
+    """Copy of ``props`` with the values of secret-looking keys hidden."""
+    return {k: ("***" if any(m in k.lower() for m in SECRET_MARKERS) else v) for k, v in props.items()}
+
+
+_TYPES = {f.name: f.type for f in fields(ServiceConfig)}
+
+
+def _coerce(name: str, value, where: str):
+    kind = _TYPES[name]
+    try:
+        if kind == "bool":
+            if isinstance(value, str):
+                if value.lower() not in ("1", "0", "true", "false", "yes", "no"):
+                    raise ValueError(value)
+                return value.lower() in ("1", "true", "yes")
+            return bool(value)
+        if kind == "int":
+            return int(value)
+        if kind == "float":
+            return float(value)
+        if kind == "str":
+            return str(value)
+    except (TypeError, ValueError):
+        raise ConfigError(f"{where}: {name} = {value!r} is not a valid {kind}") from None
+    return value
+
+
+def load_config(path: Path | None = None, env: dict[str, str] | None = None, overrides: dict | None = None) -> ServiceConfig:
+    """Build the configuration from a TOML file, the environment and overrides (in that order)."""
+    cfg = ServiceConfig()
+    if path is not None:
+        _apply_file(cfg, Path(path))
+    _apply_env(cfg, os.environ if env is None else env)
+    for name, value in (overrides or {}).items():
+        if value is not None:
+            setattr(cfg, name, _coerce(name, value, "command line") if name in _TYPES and not isinstance(value, dict) else value)
+    return cfg.validate()
+
+
+def _apply_file(cfg: ServiceConfig, path: Path) -> None:
+    try:
+        data = tomllib.loads(path.read_text(encoding="utf-8"))
+    except OSError as exc:
+        raise ConfigError(f"{path}: cannot read configuration: {exc.strerror or exc}") from exc
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"{path}: not valid TOML: {exc}") from exc
+    for key, value in data.items():
+        name = key.replace("-", "_")
+        if name == "kafka":
+            if not isinstance(value, dict):
+                raise ConfigError(f"{path}: [kafka] must be a table of librdkafka properties")
+            cfg.kafka.update({str(k): str(v) for k, v in value.items()})
+        elif name == "personalizations":
+            if not isinstance(value, dict):
+                raise ConfigError(f"{path}: [personalizations] must map profile names to seeds files")
+            cfg.personalizations.update({str(k): str(v) for k, v in value.items()})
+        elif name in _TYPES:
+            setattr(cfg, name, _coerce(name, value, str(path)))
+        else:
+            raise ConfigError(f"{path}: unknown setting {key!r}")
+
+
+def _apply_env(cfg: ServiceConfig, env) -> None:
+    for key, value in env.items():
+        if not key.startswith("RANKTIDE_"):
+            continue
+        rest = key[len("RANKTIDE_"):]
+        if rest.startswith("KAFKA_"):
+            cfg.kafka[rest[len("KAFKA_"):].lower().replace("_", ".")] = value
+        elif rest.lower() in _TYPES and rest.lower() not in ("kafka", "personalizations"):
+            setattr(cfg, rest.lower(), _coerce(rest.lower(), value, f"environment {key}"))

@@ -1,0 +1,252 @@
+"""The long-lived consumer: source in, settled scores, snapshots and commits out.
+
+One loop, one thread of work::
+
+    load the newest good snapshot (or start empty) -> seek the source there
+    repeat: poll a chunk -> apply in micro-batches, settling after each
+            -> rejects to their sink -> score-change feed when due
+            -> snapshot when due: write (atomic, fsynced) -> commit positions -> prune
+    on SIGTERM/SIGINT or the end of a finite source: final snapshot, commit, exit 0
+
+Exactly-once effect: positions are committed to the source only after the
+snapshot that covers them is durable, and a restart resumes from the
+snapshot's positions, not from the source's own idea of where it was. A
+crash between the two replays, from the snapshot, what the snapshot did
+not include, so every record counts exactly once in the next snapshot.
+The file rejects sink is truncated on restart to the size recorded in the
+snapshot, so it too holds each reject once.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import os
+import signal
+import threading
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from solver import Ranker
+from stream.config import ServiceConfig, redact
+from stream.events import Limits
+from stream.metrics import Metrics, start_metrics_server
+from stream.snapshots import Counters, SnapshotError, load_latest, prune, write_snapshot
+from stream.sources import Source, SourceChunk, open_source
+
+log = logging.getLogger("ranktide.service")
+
+
+class RejectsSink:
+    """Rejected records with place and reason: a JSON Lines file or a Kafka topic."""
+
+    def __init__(self, target: str, out: Path, kafka_props: dict[str, str], bootstrap: str | None) -> None:
+        self.topic = None
+        self.path = None
+        self._producer = None
+        if target.startswith("kafka:"):
+            from confluent_kafka import Producer
+
+            self.topic = target[len("kafka:"):]
+            if not bootstrap:
+                raise SnapshotError("a kafka: rejects sink needs a kafka:// source to name the brokers")
+            self._producer = Producer({"bootstrap.servers": bootstrap, **kafka_props})
+        else:
+            self.path = Path(target[len("file:"):] if target.startswith("file:") else (target or Path(out) / "rejects.jsonl"))
+            self.path.parent.mkdir(parents=True, exist_ok=True)
+
+    def size(self) -> int:
+        return self.path.stat().st_size if self.path is not None and self.path.exists() else 0
+
+    def truncate(self, size: int) -> None:
+        """Cut the file back to what a snapshot covered (drops rejects it will see again)."""
+        if self.path is not None and self.path.exists() and self.path.stat().st_size > size:
+            with open(self.path, "r+b") as fh:
+                fh.truncate(size)
+
+    def write(self, chunk: SourceChunk) -> None:
+        if not chunk.parsed.reasons:
+            return
+        lines = [json.dumps({**place, "reason": reason}, ensure_ascii=False)
+                 for place, reason in zip(chunk.reject_places, chunk.parsed.reasons)]
+        if self._producer is not None:
+            for line in lines:
+                self._producer.produce(self.topic, line.encode())
+                self._producer.poll(0)
+        else:
+            with open(self.path, "a", encoding="utf-8") as fh:
+                fh.write("\n".join(lines) + "\n")
+
+    def flush(self) -> None:
+        if self._producer is not None:
+            self._producer.flush(10)
+        elif self.path is not None and self.path.exists():
+            with open(self.path, "rb+") as fh:
+                os.fsync(fh.fileno())
+
+
+@dataclass
+class ScoreFeed:
+    """Score-change feed: a (compacted) Kafka topic keyed by ``profile/node``.
+
+    A node's score is sent when it moved by more than ``threshold`` relative
+    to the last value sent (new nodes always are), at most every
+    ``interval`` seconds.
+    """
+
+    topic: str
+    bootstrap: str
+    props: dict[str, str]
+    threshold: float = 0.01
+    interval: float = 5.0
+    _producer: object = None
+    _sent: dict[str, np.ndarray] = field(default_factory=dict)
+    _last: float = 0.0
+
+    def __post_init__(self) -> None:
+        from confluent_kafka import Producer
+
+        self._producer = Producer({"bootstrap.servers": self.bootstrap, "linger.ms": 50, **self.props})
+
+    def due(self) -> bool:
+        return time.monotonic() - self._last >= self.interval
+
+    def publish(self, ranker: Ranker, positions: dict) -> int:
+        """Send the changed scores of every profile; return how many were sent."""
+        self._last = time.monotonic()
+        names = ranker.node_names().to_pylist() if ranker.engine.n_nodes else []
+        sent = 0
+        for profile in ranker.profiles:
+            scores = ranker.scores(profile)
+            old = self._sent.get(profile, np.zeros(0))
+            prev = np.zeros_like(scores)
+            prev[: old.size] = old[: scores.size]
+            with np.errstate(divide="ignore", invalid="ignore"):
+                moved = np.abs(scores - prev) > self.threshold * np.abs(prev)
+            moved &= (scores != prev)
+            bound = ranker.certified_bound(profile)
+            for i in np.flatnonzero(moved):
+                value = {"node": names[i], "profile": profile, "score": float(scores[i]),
+                         "certified_bound": bound, "positions": positions}
+                self._producer.produce(self.topic, key=f"{profile}/{names[i]}".encode(), value=json.dumps(value).encode())
+                if sent % 10_000 == 0:
+                    self._producer.poll(0)
+                sent += 1
+            prev[moved] = scores[moved]
+            self._sent[profile] = prev
+        self._producer.flush(30)
+        return sent
+
+
+class Service:
+    """``ranktide run``: see the module docstring."""
+
+    def __init__(self, config: ServiceConfig) -> None:
+        self.cfg = config
+        self.out = Path(config.out)
+        self.limits = Limits(config.max_id_length, config.max_message_bytes)
+        self.metrics = Metrics()
+        self._stop = threading.Event()
+        self.ranker: Ranker | None = None
+        self.counters = Counters()
+        self.source: Source | None = None
+        self.sequence_written = 0
+
+    # -------------------------------------------------------------- lifecycle
+    def request_stop(self, *_args) -> None:
+        log.info("stop requested: finishing the current batch")
+        self._stop.set()
+
+    def install_signal_handlers(self) -> None:
+        signal.signal(signal.SIGTERM, self.request_stop)
+        signal.signal(signal.SIGINT, self.request_stop)
+
+    def _restore(self, rejects: RejectsSink) -> dict:
+        snap = load_latest(self.out)
+        if snap is None:
+            self.ranker = Ranker(damping=self.cfg.damping, tolerance=self.cfg.tolerance)
+            from replay.replay import seed_personalizations
+
+            seed_personalizations(self.ranker, {k: Path(v) for k, v in self.cfg.personalizations.items()})
+            log.info("no snapshot under %s: starting from an empty graph", self.out)
+            return {}
+        self.ranker = snap.ranker
+        self.counters = snap.counters
+        rejects.truncate(int(snap.manifest.get("positions", {}).get("rejects_bytes", 0)))
+        log.info("resumed from %s: %d events applied, %d rejected", snap.path.name,
+                 self.counters.events_applied, self.counters.events_rejected)
+        return snap.manifest.get("positions", {})
+
+    def run(self) -> int:
+        """Run until stopped; return the process exit code."""
+        cfg = self.cfg
+        log.info("starting with %s", json.dumps({**cfg.redacted(), "kafka": redact(cfg.kafka)}, default=str))
+        bootstrap = cfg.source[len("kafka://"):].split("/")[0] if cfg.source.startswith("kafka://") else None
+        rejects = RejectsSink(cfg.rejects, self.out, cfg.kafka, bootstrap)
+        positions = self._restore(rejects)
+        self.source = open_source(cfg.source, cfg.group, cfg.kafka, self.limits, cfg.poll_records)
+        self.source.seek(positions)
+        if hasattr(self.source, "set_revoke_hook"):
+            self.source.set_revoke_hook(lambda parts: self._snapshot(rejects, reason="rebalance"))
+        feed = ScoreFeed(cfg.score_topic, bootstrap, cfg.kafka, cfg.score_threshold, cfg.score_interval) \
+            if cfg.score_topic and bootstrap else None
+        server = start_metrics_server(cfg.metrics, self.metrics) if cfg.metrics else None
+        last_snapshot = time.monotonic()
+        dirty = False
+        try:
+            while not self._stop.is_set():
+                chunk = self.source.poll(timeout=0.5)
+                if chunk is not None:
+                    self._apply(chunk)
+                    rejects.write(chunk)
+                    dirty = True
+                self.metrics.lag = self.source.lag()
+                if feed is not None and dirty and feed.due():
+                    self.metrics.feed_sent += feed.publish(self.ranker, self.source.positions())
+                if time.monotonic() - last_snapshot >= cfg.snapshot_interval and dirty:
+                    self._snapshot(rejects)
+                    last_snapshot, dirty = time.monotonic(), False
+                if cfg.stop_at_end and chunk is None and self.source.at_end():
+                    log.info("source exhausted: stopping")
+                    break
+            self._snapshot(rejects, reason="final")
+            if feed is not None:
+                feed.publish(self.ranker, self.source.positions())
+        except SnapshotError as exc:
+            log.error("%s", exc)
+            return 3
+        finally:
+            self.source.close()
+            if server is not None:
+                server.shutdown()
+        return 0
+
+    # -------------------------------------------------------------- work
+    def _apply(self, chunk: SourceChunk) -> None:
+        started = time.perf_counter()
+        batch = chunk.parsed.batch
+        step = self.cfg.micro_batch
+        for start in range(0, len(batch), step):
+            part = batch.slice(start, start + step)
+            self.counters.events_noop += self.ranker.apply(part)
+            self.counters.events_applied += len(part)
+            stats = self.ranker.settle()
+            self.metrics.push_edges += stats.edge_touches
+        self.counters.events_rejected += len(chunk.parsed.reasons)
+        self.metrics.record_batch(len(batch), len(chunk.parsed.reasons), time.perf_counter() - started)
+        self.metrics.bounds = {p: self.ranker.certified_bound(p) for p in self.ranker.profiles}
+
+    def _snapshot(self, rejects: RejectsSink, reason: str = "interval") -> Path:
+        started = time.perf_counter()
+        rejects.flush()
+        positions = {**self.source.positions(), "rejects_bytes": rejects.size()}
+        path = write_snapshot(self.out, self.ranker, self.counters, positions)
+        self.source.commit(positions)
+        removed = prune(self.out, self.cfg.keep_snapshots)
+        self.metrics.record_snapshot(time.perf_counter() - started)
+        log.info("snapshot %s (%s): %d applied, %d rejected, pruned %d", path.name, reason,
+                 self.counters.events_applied, self.counters.events_rejected, len(removed))
+        return path

@@ -1,0 +1,357 @@
+"""Event sources of the service: followed JSON Lines files and Kafka topics.
+
+A source hands out :class:`SourceChunk` objects: the parsed events of a run of
+records, the place of every reject, and the position *after* the chunk. The
+service snapshots positions and, only once the snapshot is durable, commits
+them back to the source; after a crash it seeks to the snapshot's positions.
+So every record is reflected exactly once in what a snapshot holds.
+
+Positions, as stored in a manifest's ``positions``:
+
+* files: ``{"files": {"/abs/path.jsonl": {"offset": BYTES, "line": LINES_READ}}}``
+* Kafka: ``{"kafka": {"topic": {"0": NEXT_OFFSET, "1": ...}}}``
+"""
+
+from __future__ import annotations
+
+import logging
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Protocol
+
+import numpy as np
+import pyarrow as pa
+
+from replay.logs import LogError, read_log
+from stream.events import EventBatch, Limits, Parsed, parse_json_records, validate_table
+
+log = logging.getLogger("ranktide.sources")
+
+#: Header that marks a Kafka message holding an Arrow IPC stream of events.
+ARROW_CONTENT_TYPE = "application/vnd.apache.arrow.stream"
+
+
+@dataclass
+class SourceChunk:
+    """Events taken from a source in one poll.
+
+    Attributes
+    ----------
+    parsed : Parsed
+        Valid events and rejects.
+    reject_places : list of dict
+        For each reject (aligned with ``parsed.reasons``): where it came from
+        (file and line, or topic, partition and offset) and its raw text.
+    records : int
+        Records (lines or messages) consumed, valid or not.
+    """
+
+    parsed: Parsed
+    reject_places: list[dict] = field(default_factory=list)
+    records: int = 0
+
+
+class Source(Protocol):
+    def poll(self, timeout: float) -> SourceChunk | None: ...
+    def positions(self) -> dict: ...
+    def seek(self, positions: dict) -> None: ...
+    def commit(self, positions: dict) -> None: ...
+    def at_end(self) -> bool: ...
+    def lag(self) -> dict[str, int]: ...
+    def close(self) -> None: ...
+
+
+# ------------------------------------------------------------------ files
+
+
+class FileSource:
+    """JSON Lines files followed as they grow.
+
+    Parameters
+    ----------
+    path : Path
+        One file, or a folder whose ``*.jsonl`` files are read in name order
+        (a new file appearing in the folder is picked up).
+    limits : Limits
+        Input caps.
+    """
+
+    def __init__(self, path: Path, limits: Limits = Limits()) -> None:
+        self.path = Path(path)
+        if not self.path.exists():
+            raise LogError(f"{self.path}: no such file or folder")
+        self.limits = limits
+        self._pos: dict[str, dict[str, int]] = {}
+
+    def _files(self) -> list[Path]:
+        if self.path.is_dir():
+            return sorted(p for p in self.path.iterdir() if p.suffix in (".jsonl", ".ndjson", ".json") and p.is_file())
+        return [self.path]
+
+    def positions(self) -> dict:
+        return {"files": {k: dict(v) for k, v in self._pos.items()}}
+
+    def seek(self, positions: dict) -> None:
+        self._pos = {k: dict(v) for k, v in positions.get("files", {}).items()}
+
+    def commit(self, positions: dict) -> None:
+        """Nothing to tell a file: its position lives in the snapshot."""
+
+    def poll(self, timeout: float) -> SourceChunk | None:
+        for f in self._files():
+            key = str(f.resolve())
+            pos = self._pos.setdefault(key, {"offset": 0, "line": 0})
+            try:
+                size = f.stat().st_size
+            except OSError:
+                continue
+            if size < pos["offset"]:
+                raise LogError(f"{f}: file shrank below the recorded position {pos['offset']} (truncated or replaced?)")
+            if size == pos["offset"]:
+                continue
+            for chunk in read_log(f, self.limits, pos["offset"], pos["line"] + 1, follow_partial=True):
+                places = [
+                    {"file": key, "line": int(chunk.lines[r]), "offset": int(chunk.offsets[r]), "record": chunk.raw(int(r))[:2000]}
+                    for r in chunk.parsed.rejected_rows
+                ]
+                records = int(chunk.parsed.valid_rows.size + chunk.parsed.rejected_rows.size)
+                pos["line"] = chunk.end_line
+                pos["offset"] = chunk.end_offset
+                return SourceChunk(chunk.parsed, places, records)
+        time.sleep(min(timeout, 0.05))
+        return None
+
+    def at_end(self) -> bool:
+        for f in self._files():
+            pos = self._pos.get(str(f.resolve()), {"offset": 0})
+            try:
+                if f.stat().st_size > pos["offset"]:
+                    return False
+            except OSError:
+                continue
+        return True
+
+    def lag(self) -> dict[str, int]:
+        out = {}
+        for f in self._files():
+            key = str(f.resolve())
+            try:
+                out[key] = max(f.stat().st_size - self._pos.get(key, {"offset": 0})["offset"], 0)
+            except OSError:
+                pass
+        return out
+
+    def close(self) -> None:
+        pass
+
+
+# ------------------------------------------------------------------ kafka
+
+
+def parse_kafka_url(url: str) -> tuple[str, list[str]]:
+    """``kafka://h1:p1,h2:p2/topic1,topic2`` -> (bootstrap servers, topics)."""
+    if not url.startswith("kafka://"):
+        raise ValueError(f"{url!r} is not a kafka:// source")
+    rest = url[len("kafka://"):]
+    hosts, sep, topics = rest.partition("/")
+    if not hosts or not sep or not topics:
+        raise ValueError(f"{url!r}: expected kafka://HOST:PORT[,HOST:PORT...]/TOPIC[,TOPIC...]")
+    return hosts, [t for t in topics.split(",") if t]
+
+
+def decode_messages(messages: list, limits: Limits) -> SourceChunk:
+    """Parse Kafka messages: JSON values, or Arrow IPC streams marked by a header."""
+    json_values, json_places, arrow_parts = [], [], []
+    for msg in messages:
+        place = {"topic": msg.topic(), "partition": msg.partition(), "offset": msg.offset()}
+        value = msg.value()
+        if _is_arrow(msg):
+            arrow_parts.append((place, value))
+        else:
+            json_values.append(value if value is not None else b"")
+            json_places.append(place)
+    parts: list[Parsed] = []
+    places: list[dict] = []
+    records = 0
+    if json_values:
+        parsed = parse_json_records(json_values, limits)
+        parts.append(parsed)
+        records += len(json_values)
+        places += [{**json_places[r], "record": _text(json_values[r])} for r in parsed.rejected_rows]
+    for place, value in arrow_parts:
+        parsed, n = _decode_arrow(value, limits)
+        parts.append(parsed)
+        records += n
+        places += [{**place, "row": int(r), "record": ""} for r in parsed.rejected_rows]
+    batch = EventBatch.concat([p.batch for p in parts])
+    reasons = [r for p in parts for r in p.reasons]
+    merged = Parsed(batch, np.zeros(0, np.int64), np.arange(len(reasons), dtype=np.int64), reasons)
+    return SourceChunk(merged, places, records)
+
+
+def _is_arrow(msg) -> bool:
+    for key, value in msg.headers() or []:
+        if key.lower() == "content-type" and value is not None and value.decode("latin-1").strip() == ARROW_CONTENT_TYPE:
+            return True
+    return False
+
+
+def _decode_arrow(value: bytes | None, limits: Limits) -> tuple[Parsed, int]:
+    try:
+        table = pa.ipc.open_stream(value or b"").read_all()
+    except pa.ArrowException as exc:
+        empty = validate_table(pa.table({}), limits)
+        empty.reasons.append(f"not an Arrow IPC stream: {exc}")
+        empty.rejected_rows = np.zeros(1, np.int64)
+        return empty, 1
+    return validate_table(table, limits), table.num_rows
+
+
+def _text(value: bytes) -> str:
+    return value[:2000].decode("utf-8", "replace")
+
+
+class KafkaSource:
+    """All partitions of one or more topics, consumed in large batches.
+
+    Offsets are never auto-committed: :meth:`commit` is called by the service
+    only after the snapshot that includes them is durable. On assignment
+    every partition is positioned at the snapshot's recorded next offset when
+    there is one, else at the group's committed offset, else at the start.
+    """
+
+    def __init__(self, url: str, group: str, properties: dict[str, str], limits: Limits = Limits(),
+                 batch_records: int = 100_000) -> None:
+        from confluent_kafka import Consumer
+
+        self.bootstrap, self.topics = parse_kafka_url(url)
+        self.limits = limits
+        self.batch_records = batch_records
+        conf = {
+            "bootstrap.servers": self.bootstrap,
+            "group.id": group,
+            "enable.auto.commit": False,
+            "enable.auto.offset.store": False,
+            "auto.offset.reset": "earliest",
+            "enable.partition.eof": True,
+            "message.max.bytes": max(limits.max_message_bytes + 65536, 1000000),
+            "fetch.max.bytes": 64 << 20,
+            "queued.max.messages.kbytes": 256 << 10,
+            **properties,
+        }
+        self._consumer = Consumer(conf, logger=log)
+        self._next: dict[tuple[str, int], int] = {}
+        self._wanted: dict[tuple[str, int], int] = {}
+        self._eof: set[tuple[str, int]] = set()
+        self._assigned: set[tuple[str, int]] = set()
+        self._on_revoke = None
+        self._consumer.subscribe(self.topics, on_assign=self._assign, on_revoke=self._revoke, on_lost=self._revoke)
+
+    def set_revoke_hook(self, hook) -> None:
+        """``hook(partitions)`` runs before partitions are taken away (snapshot and commit there)."""
+        self._on_revoke = hook
+
+    def _assign(self, consumer, partitions) -> None:
+        from confluent_kafka import OFFSET_INVALID
+
+        committed = {(p.topic, p.partition): p.offset for p in consumer.committed(partitions, timeout=10)}
+        for p in partitions:
+            key = (p.topic, p.partition)
+            start = self._wanted.get(key, committed.get(key, OFFSET_INVALID))
+            if start is not None and start >= 0:
+                p.offset = start
+                self._next[key] = start
+            self._assigned.add(key)
+            self._eof.discard(key)
+        consumer.assign(partitions)
+        log.info("assigned %s", ", ".join(f"{p.topic}[{p.partition}]@{p.offset}" for p in partitions))
+
+    def _revoke(self, consumer, partitions) -> None:
+        if self._on_revoke is not None:
+            self._on_revoke(partitions)
+        for p in partitions:
+            key = (p.topic, p.partition)
+            self._assigned.discard(key)
+            self._next.pop(key, None)
+            self._wanted.pop(key, None)
+        log.info("revoked %s", ", ".join(f"{p.topic}[{p.partition}]" for p in partitions))
+
+    def positions(self) -> dict:
+        out: dict[str, dict[str, int]] = {}
+        for (topic, part), off in sorted(self._next.items()):
+            out.setdefault(topic, {})[str(part)] = off
+        return {"kafka": out}
+
+    def seek(self, positions: dict) -> None:
+        for topic, parts in positions.get("kafka", {}).items():
+            for part, off in parts.items():
+                self._wanted[(topic, int(part))] = int(off)
+                self._next[(topic, int(part))] = int(off)
+
+    def commit(self, positions: dict) -> None:
+        from confluent_kafka import KafkaException, TopicPartition
+
+        offsets = [
+            TopicPartition(topic, int(part), int(off))
+            for topic, parts in positions.get("kafka", {}).items()
+            for part, off in parts.items()
+            if (topic, int(part)) in self._assigned
+        ]
+        if offsets:
+            try:
+                self._consumer.commit(offsets=offsets, asynchronous=False)
+            except KafkaException as exc:
+                # the snapshot holds the positions; a failed commit only delays the group's view
+                log.warning("offset commit failed (positions are safe in the snapshot): %s", exc)
+
+    def poll(self, timeout: float) -> SourceChunk | None:
+        from confluent_kafka import KafkaError
+
+        messages = self._consumer.consume(num_messages=self.batch_records, timeout=timeout)
+        good = []
+        for msg in messages:
+            err = msg.error()
+            if err is None:
+                good.append(msg)
+                key = (msg.topic(), msg.partition())
+                self._next[key] = msg.offset() + 1
+                self._eof.discard(key)
+            elif err.code() == KafkaError._PARTITION_EOF:
+                self._eof.add((msg.topic(), msg.partition()))
+            elif err.fatal():
+                raise RuntimeError(f"Kafka consumer failed: {err.str()}")
+            else:
+                log.warning("Kafka: %s", err.str())
+        if not good:
+            return None
+        return decode_messages(good, self.limits)
+
+    def at_end(self) -> bool:
+        return bool(self._assigned) and self._assigned <= self._eof
+
+    def lag(self) -> dict[str, int]:
+        out = {}
+        for key in sorted(self._assigned):
+            from confluent_kafka import TopicPartition
+
+            try:
+                _, high = self._consumer.get_watermark_offsets(TopicPartition(*key), cached=True)
+            except Exception:  # noqa: BLE001 - a lag figure is best effort
+                continue
+            if high is not None and high >= 0:
+                out[f"{key[0]}/{key[1]}"] = max(high - self._next.get(key, 0), 0)
+        return out
+
+    def close(self) -> None:
+        try:
+            self._consumer.close()
+        except RuntimeError:
+            pass
+
+
+def open_source(url: str, group: str, properties: dict[str, str], limits: Limits, batch_records: int) -> Source:
+    """A source for ``file:PATH`` or ``kafka://...``."""
+    if url.startswith("file:"):
+        return FileSource(Path(url[len("file:"):]), limits)
+    return KafkaSource(url, group, properties, limits, batch_records)
