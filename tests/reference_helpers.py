@@ -128,7 +128,7 @@ def undirected_model(graph: nx.Graph, weight: str | None = "weight") -> GraphMod
 # ---------------------------------------------------------------- driving the engine
 
 
-def event_script(model: GraphModel, rng: np.random.Generator) -> list[EventBatch]:
+def event_script(model: GraphModel, rng: np.random.Generator, ghosts: int = 3) -> list[EventBatch]:
     """Batches of events whose final state is ``model`` but whose path is not direct.
 
     Batch 1 inserts every final edge (a third with a wrong weight), decoy
@@ -137,6 +137,10 @@ def event_script(model: GraphModel, rng: np.random.Generator) -> list[EventBatch
     decoy seeds. Batch 2 re-weights, deletes the decoys, deletes edges that
     never existed, re-delivers some inserts unchanged, removes decoy seeds and
     re-weights seeds. Within each batch the order is random.
+
+    ``ghosts`` of the missing-edge deletes start at new names ``ghost0, ...``;
+    such a delete still creates its nodes (a node exists from its first valid
+    event), so they are added to ``model`` as isolated nodes.
     """
     nodes = list(model.nodes)
     final = list(model.edges.items())
@@ -159,10 +163,11 @@ def event_script(model: GraphModel, rng: np.random.Generator) -> list[EventBatch
 
     second_ins = [(u, v, w) for ((u, v), w), bad in zip(final, wrong) if bad]
     second_ins += [(u, v, w) for ((u, v), w), bad in zip(final, wrong) if not bad and rng.random() < 0.2]
-    second_del = decoys + [(f"ghost{i}", str(rng.choice(nodes))) for i in range(3)]
-    second_del = [e for e in second_del if e not in model.edges]
-    # deleting an edge between new names creates those nodes, so keep the ghosts in the model
-    model.touch(*(u for u, _ in second_del))
+    missing = [(str(rng.choice(nodes)), str(rng.choice(nodes))) for _ in range(3)]
+    missing = [e for e in missing if e not in model.edges and e not in decoys]
+    ghost_edges = [(f"ghost{i}", str(rng.choice(nodes))) for i in range(ghosts)]
+    model.touch(*(u for u, _ in ghost_edges))
+    second_del = decoys + missing + ghost_edges
     ins_order, del_order = rng.permutation(len(second_ins)), rng.permutation(len(second_del))
     batches.append(
         EventBatch.concat(
