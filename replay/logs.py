@@ -77,6 +77,7 @@ def read_log(
     start_line: int = 1,
     batch_rows: int = 65_536,
     follow_partial: bool = False,
+    chunk_bytes: int = CHUNK_BYTES,
 ) -> Iterator[LogChunk]:
     """Iterate over a log in chunks.
 
@@ -90,6 +91,8 @@ def read_log(
     follow_partial : bool
         JSON Lines only: leave a last line without its newline unread (it may
         still be being written). A finished log reads it too.
+    chunk_bytes : int
+        JSON Lines only: bytes read per chunk (a chunk ends on a line end).
 
     Raises
     ------
@@ -106,19 +109,21 @@ def read_log(
         elif fmt == "csv":
             yield from _read_csv(path, limits, start_offset, batch_rows)
         else:
-            yield from _read_jsonl(path, limits, start_offset, start_line, follow_partial)
+            yield from _read_jsonl(path, limits, start_offset, start_line, follow_partial, chunk_bytes)
     except OSError as exc:
         raise LogError(f"{path}: cannot read: {exc.strerror or exc}") from exc
     except pa.ArrowException as exc:
         raise LogError(f"{path}: not a readable {fmt} log: {exc}") from exc
 
 
-def _read_jsonl(path: Path, limits: Limits, offset: int, line_no: int, follow_partial: bool) -> Iterator[LogChunk]:
+def _read_jsonl(
+    path: Path, limits: Limits, offset: int, line_no: int, follow_partial: bool, chunk_bytes: int
+) -> Iterator[LogChunk]:
     with open(path, "rb") as fh:
         fh.seek(offset)
         carry = b""
         while True:
-            block = fh.read(CHUNK_BYTES)
+            block = fh.read(chunk_bytes)
             at_end = not block
             data = carry + block
             if not data:
@@ -129,7 +134,7 @@ def _read_jsonl(path: Path, limits: Limits, offset: int, line_no: int, follow_pa
             if cut == 0:
                 if at_end:
                     return
-                if len(data) > limits.max_record_bytes + CHUNK_BYTES:
+                if len(data) > limits.max_record_bytes + chunk_bytes:
                     cut = len(data)  # an endless line: hand it over, it is rejected as too long
                 else:
                     carry = data

@@ -157,6 +157,12 @@ def _cmd_audit(args: argparse.Namespace) -> int:
     return run_audit(args.root, args.snapshot, args.all, args.k, args.json, args.plot)
 
 
+def _cmd_demo(args: argparse.Namespace) -> int:
+    from replay.demo import run_demo
+
+    return run_demo(args.out)
+
+
 def _cmd_bench(args: argparse.Namespace) -> int:
     from replay.bench import run_bench
 
@@ -255,6 +261,14 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="print the results as JSON")
     p.add_argument("--plot", type=Path, metavar="FILE.png", help="plot measured error and bound against events applied")
     p.set_defaults(func=_cmd_audit)
+
+    p = sub.add_parser("demo", help="the built-in scenario end to end: consumer, snapshots, audit, pictures",
+                       description="Generate a fictional package ecosystem whose dependencies change with releases "
+                                   "(with a personalization seeded from one team's services), run the consumer on it "
+                                   "through its file source, audit every snapshot and draw the top movers and the "
+                                   "error against the bound. Needs no broker.")
+    p.add_argument("--out", type=Path, default=Path("ranktide-demo"), help="output folder (default ranktide-demo)")
+    p.set_defaults(func=_cmd_demo)
 
     p = sub.add_parser("bench", help="measure the engine against recomputing (prints figures)",
                        description="Benchmarks that print figures measured side by side in one run.")

@@ -51,12 +51,16 @@ class ServiceConfig:
         Engine parameters.
     snapshot_interval : float
         Seconds between snapshots (offsets are committed with each one).
+    snapshot_events : int
+        Also snapshot after this many events (0: by time only).
     keep_snapshots : int
         How many snapshots to keep; older ones are pruned.
     micro_batch : int
         Events applied between two settles.
     poll_records : int
         Largest number of messages taken from the source in one poll.
+    file_chunk_bytes : int
+        Largest number of bytes taken from a file source in one poll.
     rejects : str
         Where rejects go: ``file:PATH`` (default ``OUT/rejects.jsonl``) or
         ``kafka:TOPIC``.
@@ -86,9 +90,11 @@ class ServiceConfig:
     tolerance: float = 1e-6
     damping: float = 0.85
     snapshot_interval: float = 60.0
+    snapshot_events: int = 0
     keep_snapshots: int = 5
     micro_batch: int = 50_000
     poll_records: int = 100_000
+    file_chunk_bytes: int = 8 << 20
     rejects: str = ""
     max_id_length: int = 1024
     max_message_bytes: int = 1 << 20

@@ -187,7 +187,8 @@ class Service:
         bootstrap = cfg.source[len("kafka://"):].split("/")[0] if cfg.source.startswith("kafka://") else None
         rejects = RejectsSink(cfg.rejects, self.out, cfg.kafka, bootstrap)
         positions = self._restore(rejects)
-        self.source = open_source(cfg.source, cfg.group, cfg.kafka, self.limits, cfg.poll_records)
+        self.source = open_source(cfg.source, cfg.group, cfg.kafka, self.limits, cfg.poll_records,
+                                  cfg.file_chunk_bytes)
         self.source.seek(positions)
         if hasattr(self.source, "set_revoke_hook"):
             self.source.set_revoke_hook(lambda parts: self._snapshot(rejects, reason="rebalance"))
@@ -195,6 +196,7 @@ class Service:
             if cfg.score_topic and bootstrap else None
         server = start_metrics_server(cfg.metrics, self.metrics) if cfg.metrics else None
         last_snapshot = time.monotonic()
+        events_at_snapshot = self.counters.events_applied + self.counters.events_rejected
         dirty = False
         try:
             while not self._stop.is_set():
@@ -206,9 +208,11 @@ class Service:
                 self.metrics.lag = self.source.lag()
                 if feed is not None and dirty and feed.due():
                     self.metrics.feed_sent += feed.publish(self.ranker, self.source.positions())
-                if time.monotonic() - last_snapshot >= cfg.snapshot_interval and dirty:
+                seen = self.counters.events_applied + self.counters.events_rejected
+                by_count = cfg.snapshot_events > 0 and seen - events_at_snapshot >= cfg.snapshot_events
+                if dirty and (by_count or time.monotonic() - last_snapshot >= cfg.snapshot_interval):
                     self._snapshot(rejects)
-                    last_snapshot, dirty = time.monotonic(), False
+                    last_snapshot, dirty, events_at_snapshot = time.monotonic(), False, seen
                 if cfg.stop_at_end and chunk is None and self.source.at_end():
                     log.info("source exhausted: stopping")
                     break

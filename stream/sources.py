@@ -75,13 +75,16 @@ class FileSource:
         (a new file appearing in the folder is picked up).
     limits : Limits
         Input caps.
+    chunk_bytes : int
+        Most bytes taken from a file in one poll.
     """
 
-    def __init__(self, path: Path, limits: Limits = Limits()) -> None:
+    def __init__(self, path: Path, limits: Limits = Limits(), chunk_bytes: int = 8 << 20) -> None:
         self.path = Path(path)
         if not self.path.exists():
             raise LogError(f"{self.path}: no such file or folder")
         self.limits = limits
+        self.chunk_bytes = chunk_bytes
         self._pos: dict[str, dict[str, int]] = {}
 
     def _files(self) -> list[Path]:
@@ -110,7 +113,8 @@ class FileSource:
                 raise LogError(f"{f}: file shrank below the recorded position {pos['offset']} (truncated or replaced?)")
             if size == pos["offset"]:
                 continue
-            for chunk in read_log(f, self.limits, pos["offset"], pos["line"] + 1, follow_partial=True):
+            for chunk in read_log(f, self.limits, pos["offset"], pos["line"] + 1, follow_partial=True,
+                                  chunk_bytes=self.chunk_bytes):
                 places = [
                     {"file": key, "line": int(chunk.lines[r]), "offset": int(chunk.offsets[r]), "record": chunk.raw(int(r))[:2000]}
                     for r in chunk.parsed.rejected_rows
@@ -350,8 +354,9 @@ class KafkaSource:
             pass
 
 
-def open_source(url: str, group: str, properties: dict[str, str], limits: Limits, batch_records: int) -> Source:
+def open_source(url: str, group: str, properties: dict[str, str], limits: Limits, batch_records: int,
+                chunk_bytes: int = 8 << 20) -> Source:
     """A source for ``file:PATH`` or ``kafka://...``."""
     if url.startswith("file:"):
-        return FileSource(Path(url[len("file:"):]), limits)
+        return FileSource(Path(url[len("file:"):]), limits, chunk_bytes)
     return KafkaSource(url, group, properties, limits, batch_records)
