@@ -1,0 +1,94 @@
+"""Shared pieces of the service tests: an event stream with its ground truth, and checks.
+
+The ground truth is kept independently of ranktide: a plain dict of the final
+edge set, from which NetworkX computes the reference PageRank.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import networkx as nx
+import numpy as np
+import pyarrow.parquet as pq
+
+MALFORMED = [
+    b"not json at all",
+    b'{"op": "insert", "src": "a"}',
+    b'{"op": "insert", "src": "a", "dst": "b", "weight": 0}',
+    b'{"op": "insert", "src": "a", "dst": "b", "weight": "NaN"}',
+    b'{"op": "teleport", "src": "a", "dst": "b"}',
+    b'["insert", "a", "b"]',
+    b'{"op": "delete", "src": true, "dst": "b"}',
+]
+
+
+@dataclass
+class Stream:
+    """Encoded records (JSON bytes, with their Kafka key) and the truth they imply."""
+
+    records: list[tuple[bytes, bytes]] = field(default_factory=list)
+    edges: dict[tuple[str, str], float] = field(default_factory=dict)
+    nodes: set[str] = field(default_factory=set)
+    malformed: int = 0
+
+    def extend(self, rng: np.random.Generator, count: int, n_nodes: int = 1500, bad_share: float = 0.01) -> None:
+        """Append ``count`` records: inserts, re-weights, deletes and malformed ones."""
+        for _ in range(count):
+            if rng.random() < bad_share:
+                self.records.append((b"bad", MALFORMED[int(rng.integers(len(MALFORMED)))]))
+                self.malformed += 1
+                continue
+            if self.edges and rng.random() < 0.25:
+                keys = list(self.edges)
+                src, dst = keys[int(rng.integers(len(keys)))]
+                del self.edges[(src, dst)]
+                rec = {"op": "delete", "src": src, "dst": dst}
+            else:
+                src = f"v{int(rng.integers(n_nodes))}"
+                dst = f"v{int(rng.pareto(1.5) * 10) % n_nodes}"
+                weight = float(rng.choice([1.0, 2.0, 0.5]))
+                self.edges[(src, dst)] = weight
+                rec = {"op": "insert", "src": src, "dst": dst, "weight": weight}
+            self.nodes.update((src, dst))
+            # keyed by source node: the events of one edge keep their order in one partition
+            self.records.append((src.encode(), json.dumps(rec).encode()))
+
+    def reference_scores(self, damping: float = 0.85) -> dict[str, float]:
+        """NetworkX ``pagerank`` on the true final graph (every node seen, isolated ones included)."""
+        g = nx.DiGraph()
+        g.add_nodes_from(self.nodes)
+        g.add_weighted_edges_from((s, d, w) for (s, d), w in self.edges.items())
+        return nx.pagerank(g, alpha=damping, tol=1e-13, max_iter=10_000)
+
+
+def newest_snapshot(root: Path) -> Path:
+    dirs = sorted(p for p in Path(root).iterdir() if p.name.startswith("snap-"))
+    assert dirs, f"no snapshot under {root}"
+    return dirs[-1]
+
+
+def check_snapshot_against(stream: Stream, snap: Path, tolerance: float) -> dict:
+    """Assert the snapshot's edges are the truth and its scores within ``tolerance`` of NetworkX."""
+    manifest = json.loads((snap / "manifest.json").read_text())
+    edges = pq.read_table(snap / "edges.parquet").to_pylist()
+    assert {(e["src"], e["dst"]): e["weight"] for e in edges} == stream.edges
+    scores = pq.read_table(snap / "scores.parquet").to_pylist()
+    ours = {r["node"]: r["score"] for r in scores if r["profile"] == "global"}
+    ref = stream.reference_scores(manifest["damping"])
+    assert set(ours) == set(ref)
+    l1 = sum(abs(ours[n] - ref[n]) for n in ref)
+    assert l1 <= tolerance, f"L1 {l1} above tolerance {tolerance}"
+    return manifest
+
+
+def ranktide(*args: str, env: dict | None = None, **kwargs) -> subprocess.Popen:
+    """Start the ``ranktide`` command line as a child process."""
+    full_env = {**os.environ, **(env or {})}
+    return subprocess.Popen([sys.executable, "-m", "stream.cli", *args], env=full_env,
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, **kwargs)

@@ -1,0 +1,160 @@
+"""The long-lived consumer on its file source: following, crash recovery, signals, bad folders.
+
+Reference for the scores: NetworkX ``pagerank`` on the true final graph
+(see :mod:`tests.stream_helpers`). Crashes are real ``kill -9`` of the child
+process.
+"""
+
+from __future__ import annotations
+
+import json
+import signal
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from stream_helpers import Stream, check_snapshot_against, newest_snapshot, ranktide
+
+TOLERANCE = 1e-6
+SLOW = {"RANKTIDE_FILE_CHUNK_BYTES": "8192"}  # small polls, so a crash lands mid-stream
+
+
+def _append(path: Path, records: list[tuple[bytes, bytes]]) -> None:
+    with open(path, "ab") as fh:
+        fh.write(b"".join(value + b"\n" for _, value in records))
+
+
+def _wait_for(predicate, timeout: float = 60.0, what: str = "condition") -> None:
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        if predicate():
+            return
+        time.sleep(0.05)
+    raise AssertionError(f"timed out waiting for {what}")
+
+
+def _has_snapshot(root: Path) -> bool:
+    return root.is_dir() and any(p.name.startswith("snap-") for p in root.iterdir())
+
+
+def _run_args(log: Path, root: Path, *extra: str) -> list[str]:
+    return ["run", "--source", f"file:{log}", "--out", str(root), "--metrics", "",
+            "--snapshot-interval", "0.2", "--tolerance", str(TOLERANCE), *extra]
+
+
+def test_follows_a_growing_file_and_resumes_after_kill9(tmp_path: Path) -> None:
+    rng = np.random.default_rng(11)
+    stream = Stream()
+    stream.extend(rng, 6000)
+    log, root = tmp_path / "events.jsonl", tmp_path / "snaps"
+    _append(log, stream.records)
+    first = ranktide(*_run_args(log, root), env=SLOW)
+    _wait_for(lambda: _has_snapshot(root), what="a first snapshot")
+    # grow the file while the consumer runs, ending with half a line
+    more = Stream(edges=stream.edges, nodes=stream.nodes, malformed=stream.malformed)
+    more.extend(rng, 6000)
+    _append(log, more.records[:-1])
+    last_value = more.records[-1][1]
+    with open(log, "ab") as fh:
+        fh.write(last_value[:7])
+    time.sleep(0.5)
+    first.kill()  # kill -9
+    first.wait(10)
+    before = json.loads((newest_snapshot(root) / "manifest.json").read_text())
+    # the crash came mid-stream: the restart has records left to take
+    assert before["events_applied"] + before["events_rejected"] < len(more.records)
+    with open(log, "ab") as fh:
+        fh.write(last_value[7:] + b"\n")
+    second = ranktide(*_run_args(log, root, "--stop-at-end"), env=SLOW)
+    out, err = second.communicate(timeout=120)
+    assert second.returncode == 0, err.decode()
+    manifest = check_snapshot_against(more, newest_snapshot(root), TOLERANCE)
+    lines = log.read_bytes().count(b"\n")
+    assert manifest["events_applied"] + manifest["events_rejected"] == lines
+    assert manifest["events_rejected"] == more.malformed
+    rejects = (root / "rejects.jsonl").read_text().splitlines()
+    assert len(rejects) == more.malformed  # the sink holds each reject exactly once
+    assert all({"file", "line", "offset", "reason"} <= set(json.loads(r)) for r in rejects)
+    assert manifest["positions"]["files"][str(log.resolve())]["offset"] == log.stat().st_size
+
+
+def test_sigterm_finishes_with_a_final_snapshot(tmp_path: Path) -> None:
+    stream = Stream()
+    stream.extend(np.random.default_rng(5), 3000)
+    log, root = tmp_path / "events.jsonl", tmp_path / "snaps"
+    _append(log, stream.records)
+    proc = ranktide(*_run_args(log, root, "--snapshot-interval", "3600"))
+    _wait_for(lambda: (root / "rejects.jsonl").exists() or _has_snapshot(root), what="the consumer to start")
+    time.sleep(1.0)
+    started = time.monotonic()
+    proc.send_signal(signal.SIGTERM)
+    proc.communicate(timeout=30)
+    assert proc.returncode == 0
+    assert time.monotonic() - started < 10
+    manifest = check_snapshot_against(stream, newest_snapshot(root), TOLERANCE)
+    assert manifest["events_applied"] + manifest["events_rejected"] == len(stream.records)
+
+
+def test_a_corrupted_newest_snapshot_is_skipped(tmp_path: Path) -> None:
+    rng = np.random.default_rng(8)
+    stream = Stream()
+    stream.extend(rng, 2000)
+    log, root = tmp_path / "events.jsonl", tmp_path / "snaps"
+    _append(log, stream.records)
+    assert ranktide(*_run_args(log, root, "--stop-at-end")).wait(60) == 0
+    stream.extend(rng, 2000)
+    _append(log, stream.records[2000:])
+    assert ranktide(*_run_args(log, root, "--stop-at-end")).wait(60) == 0
+    newest = newest_snapshot(root)
+    scores = newest / "scores.parquet"
+    data = bytearray(scores.read_bytes())
+    data[len(data) // 2] ^= 0xFF
+    scores.write_bytes(bytes(data))
+    proc = ranktide(*_run_args(log, root, "--stop-at-end"))
+    _, err = proc.communicate(timeout=60)
+    assert proc.returncode == 0, err.decode()
+    assert "skipping snapshot" in err.decode() and "sha256" in err.decode()
+    manifest = check_snapshot_against(stream, newest_snapshot(root), TOLERANCE)
+    assert manifest["events_applied"] + manifest["events_rejected"] == len(stream.records)
+
+
+def test_an_unwritable_snapshot_root_is_a_clear_error(tmp_path: Path) -> None:
+    stream = Stream()
+    stream.extend(np.random.default_rng(2), 200)
+    log = tmp_path / "events.jsonl"
+    _append(log, stream.records)
+    blocker = tmp_path / "not-a-folder"
+    blocker.write_text("a file where the snapshot root should be")
+    proc = ranktide(*_run_args(log, blocker / "snaps", "--stop-at-end"))
+    _, err = proc.communicate(timeout=60)
+    assert proc.returncode != 0
+    assert "not-a-folder" in err.decode()
+    assert blocker.read_text().startswith("a file")
+
+
+def test_a_missing_log_is_a_clear_error(tmp_path: Path) -> None:
+    proc = ranktide(*_run_args(tmp_path / "nope.jsonl", tmp_path / "snaps", "--stop-at-end"))
+    _, err = proc.communicate(timeout=60)
+    assert proc.returncode == 2
+    assert "nope.jsonl" in err.decode() and "no such" in err.decode()
+
+
+@pytest.mark.parametrize("as_env", [False, True])
+def test_configuration_file_environment_and_secrets(tmp_path: Path, as_env: bool) -> None:
+    from stream.config import load_config
+
+    cfg_file = tmp_path / "ranktide.toml"
+    cfg_file.write_text(
+        'source = "kafka://127.0.0.1:1/edges"\ntolerance = 1e-5\n[kafka]\n"sasl.password" = "hunter2"\n'
+    )
+    env = {"RANKTIDE_TOLERANCE": "1e-7", "RANKTIDE_KAFKA_SSL_KEY_PASSWORD": "s3cret"} if as_env else {}
+    cfg = load_config(cfg_file, env=env, overrides={"snapshot_interval": 5})
+    assert cfg.tolerance == (1e-7 if as_env else 1e-5)
+    assert cfg.snapshot_interval == 5
+    assert cfg.kafka["sasl.password"] == "hunter2"
+    shown = json.dumps(cfg.redacted())
+    assert "hunter2" not in shown and "s3cret" not in shown
+    if as_env:
+        assert cfg.kafka["ssl.key.password"] == "s3cret"
