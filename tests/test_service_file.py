@@ -18,7 +18,7 @@ import pytest
 from stream_helpers import Stream, check_snapshot_against, newest_snapshot, ranktide
 
 TOLERANCE = 1e-6
-SLOW = {"RANKTIDE_FILE_CHUNK_BYTES": "8192"}  # small polls, so a crash lands mid-stream
+SLOW = {"RANKTIDE_FILE_CHUNK_BYTES": "2048"}  # small polls, so a crash lands mid-stream
 
 
 def _append(path: Path, records: list[tuple[bytes, bytes]]) -> None:
@@ -53,13 +53,13 @@ def test_follows_a_growing_file_and_resumes_after_kill9(tmp_path: Path) -> None:
     first = ranktide(*_run_args(log, root), env=SLOW)
     _wait_for(lambda: _has_snapshot(root), what="a first snapshot")
     # grow the file while the consumer runs, ending with half a line
-    more = Stream(edges=stream.edges, nodes=stream.nodes, malformed=stream.malformed)
+    more = Stream(records=list(stream.records), edges=stream.edges, nodes=stream.nodes, malformed=stream.malformed)
     more.extend(rng, 6000)
-    _append(log, more.records[:-1])
+    _append(log, more.records[len(stream.records):-1])
     last_value = more.records[-1][1]
     with open(log, "ab") as fh:
         fh.write(last_value[:7])
-    time.sleep(0.5)
+    time.sleep(0.1)
     first.kill()  # kill -9
     first.wait(10)
     before = json.loads((newest_snapshot(root) / "manifest.json").read_text())
