@@ -1,0 +1,42 @@
+"""Shared pytest fixtures for ranktide."""
+
+from __future__ import annotations
+
+import os
+from typing import Iterator
+
+import pytest
+
+from stream.broker import LocalKafka
+
+
+def _kafka_skipped() -> bool:
+    """Tell whether the user opted out of tests that need a real broker."""
+    return os.environ.get("RANKTIDE_SKIP_KAFKA") == "1"
+
+
+def pytest_collection_modifyitems(config: pytest.Config, items: list[pytest.Item]) -> None:
+    """Skip ``kafka``-marked tests only on explicit request, never silently."""
+    if not _kafka_skipped():
+        return
+    skip = pytest.mark.skip(reason="RANKTIDE_SKIP_KAFKA=1")
+    for item in items:
+        if "kafka" in item.keywords:
+            item.add_marker(skip)
+
+
+@pytest.fixture(scope="session")
+def kafka_broker() -> Iterator[LocalKafka]:
+    """Yield one started local Kafka broker shared by the whole session.
+
+    A broker that fails to start fails the tests that use it; set
+    ``RANKTIDE_SKIP_KAFKA=1`` to skip them instead.
+    """
+    if _kafka_skipped():
+        pytest.skip("RANKTIDE_SKIP_KAFKA=1")
+    broker = LocalKafka()
+    broker.start()
+    try:
+        yield broker
+    finally:
+        broker.stop()
