@@ -109,10 +109,10 @@ def cache_dir(version: str = KAFKA_VERSION) -> Path:
     Returns
     -------
     pathlib.Path
-        ``$RANKTIDE_KAFKA_CACHE`` if set, else
+        ``$RANKTIDE_BROKER_CACHE`` if set, else
         ``~/.cache/ranktide/kafka-<version>``.
     """
-    override = os.environ.get("RANKTIDE_KAFKA_CACHE")
+    override = os.environ.get("RANKTIDE_BROKER_CACHE")
     if override:
         return Path(override).expanduser()
     return Path.home() / ".cache" / "ranktide" / f"kafka-{version}"
@@ -650,7 +650,7 @@ def _parser() -> argparse.ArgumentParser:
         description=(f"Run a local single-node Apache Kafka {KAFKA_VERSION} broker "
                      "(KRaft mode, 127.0.0.1 only) for tests and trying ranktide out. "
                      "Needs Java 17+ and Maven; jars are cached in "
-                     "~/.cache/ranktide/kafka-<version> or $RANKTIDE_KAFKA_CACHE."),
+                     "~/.cache/ranktide/kafka-<version> or $RANKTIDE_BROKER_CACHE."),
     )
     commands = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
     start = commands.add_parser(

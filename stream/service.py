@@ -153,7 +153,8 @@ class Service:
         self.ranker: Ranker | None = None
         self.counters = Counters()
         self.source: Source | None = None
-        self.sequence_written = 0
+        self._dirty = False     # events applied since the last snapshot
+        self._closing = False
 
     # -------------------------------------------------------------- lifecycle
     def request_stop(self, *_args) -> None:
@@ -191,28 +192,27 @@ class Service:
                                   cfg.file_chunk_bytes)
         self.source.seek(positions)
         if hasattr(self.source, "set_revoke_hook"):
-            self.source.set_revoke_hook(lambda parts: self._snapshot(rejects, reason="rebalance"))
+            self.source.set_revoke_hook(lambda parts: self._on_revoke(rejects))
         feed = ScoreFeed(cfg.score_topic, bootstrap, cfg.kafka, cfg.score_threshold, cfg.score_interval) \
             if cfg.score_topic and bootstrap else None
         server = start_metrics_server(cfg.metrics, self.metrics) if cfg.metrics else None
         last_snapshot = time.monotonic()
         events_at_snapshot = self.counters.events_applied + self.counters.events_rejected
-        dirty = False
         try:
             while not self._stop.is_set():
                 chunk = self.source.poll(timeout=0.5)
                 if chunk is not None:
                     self._apply(chunk)
                     rejects.write(chunk)
-                    dirty = True
+                    self._dirty = True
                 self.metrics.lag = self.source.lag()
-                if feed is not None and dirty and feed.due():
+                if feed is not None and self._dirty and feed.due():
                     self.metrics.feed_sent += feed.publish(self.ranker, self.source.positions())
                 seen = self.counters.events_applied + self.counters.events_rejected
                 by_count = cfg.snapshot_events > 0 and seen - events_at_snapshot >= cfg.snapshot_events
-                if dirty and (by_count or time.monotonic() - last_snapshot >= cfg.snapshot_interval):
+                if self._dirty and (by_count or time.monotonic() - last_snapshot >= cfg.snapshot_interval):
                     self._snapshot(rejects)
-                    last_snapshot, dirty, events_at_snapshot = time.monotonic(), False, seen
+                    last_snapshot, events_at_snapshot = time.monotonic(), seen
                 if cfg.stop_at_end and chunk is None and self.source.at_end():
                     log.info("source exhausted: stopping")
                     break
@@ -223,6 +223,7 @@ class Service:
             log.error("%s", exc)
             return 3
         finally:
+            self._closing = True
             self.source.close()
             if server is not None:
                 server.shutdown()
@@ -243,6 +244,11 @@ class Service:
         self.metrics.record_batch(len(batch), len(chunk.parsed.reasons), time.perf_counter() - started)
         self.metrics.bounds = {p: self.ranker.certified_bound(p) for p in self.ranker.profiles}
 
+    def _on_revoke(self, rejects: RejectsSink) -> None:
+        """Partitions are being taken away: make what was applied from them durable first."""
+        if self._dirty and not self._closing:
+            self._snapshot(rejects, reason="rebalance")
+
     def _snapshot(self, rejects: RejectsSink, reason: str = "interval") -> Path:
         started = time.perf_counter()
         rejects.flush()
@@ -250,6 +256,7 @@ class Service:
         path = write_snapshot(self.out, self.ranker, self.counters, positions)
         self.source.commit(positions)
         removed = prune(self.out, self.cfg.keep_snapshots)
+        self._dirty = False
         self.metrics.record_snapshot(time.perf_counter() - started)
         log.info("snapshot %s (%s): %d applied, %d rejected, pruned %d", path.name, reason,
                  self.counters.events_applied, self.counters.events_rejected, len(removed))

@@ -239,7 +239,7 @@ class KafkaSource:
             "enable.auto.offset.store": False,
             "auto.offset.reset": "earliest",
             "enable.partition.eof": True,
-            "message.max.bytes": max(limits.max_message_bytes + 65536, 1000000),
+            "message.max.bytes": max(limits.max_record_bytes + 65536, 1000000),
             "fetch.max.bytes": 64 << 20,
             "queued.max.messages.kbytes": 256 << 10,
             **properties,

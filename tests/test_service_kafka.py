@@ -1,0 +1,190 @@
+"""The long-lived consumer against a real Apache Kafka broker (KRaft, single node, loopback).
+
+The broker is started by the ``kafka_broker`` fixture of ``conftest.py``.
+Reference for the scores: NetworkX ``pagerank`` on the true final graph.
+"""
+
+from __future__ import annotations
+
+import json
+import signal
+import time
+import uuid
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import pytest
+from confluent_kafka import Consumer, Producer
+
+from stream.sources import ARROW_CONTENT_TYPE
+from stream_helpers import Stream, check_snapshot_against, newest_snapshot, ranktide
+
+pytestmark = pytest.mark.kafka
+TOLERANCE = 1e-6
+
+
+def _produce(bootstrap: str, topic: str, records: list[tuple[bytes, bytes]], headers=None) -> None:
+    producer = Producer({"bootstrap.servers": bootstrap, "linger.ms": 20, "enable.idempotence": True})
+    for key, value in records:
+        producer.produce(topic, key=key, value=value, headers=headers)
+        producer.poll(0)
+    assert producer.flush(60) == 0
+
+
+def _topic(broker, partitions: int = 3) -> str:
+    name = f"edges-{uuid.uuid4().hex[:8]}"
+    broker.create_topic(name, partitions=partitions)
+    return name
+
+
+def _args(broker, topic: str, root: Path, *extra: str) -> list[str]:
+    return ["run", "--source", f"kafka://{broker.bootstrap}/{topic}", "--out", str(root),
+            "--group", f"g-{topic}", "--metrics", "", "--snapshot-interval", "0.3",
+            "--tolerance", str(TOLERANCE), *extra]
+
+
+def _wait_snapshot_count(root: Path, count: int, timeout: float = 60) -> None:
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        if root.is_dir() and sum(p.name.startswith("snap-") for p in root.iterdir()) >= count:
+            return
+        time.sleep(0.05)
+    raise AssertionError(f"fewer than {count} snapshots under {root}")
+
+
+def test_two_kill9_and_a_broker_restart_count_every_message_once(kafka_broker, tmp_path: Path) -> None:
+    rng = np.random.default_rng(21)
+    topic = _topic(kafka_broker)
+    root = tmp_path / "snaps"
+    stream = Stream()
+    slow = {"RANKTIDE_POLL_RECORDS": "300"}  # small polls: the kills land mid-stream
+    stream.extend(rng, 12_000)
+    _produce(kafka_broker.bootstrap, topic, stream.records)
+    first = ranktide(*_args(kafka_broker, topic, root), env=slow)
+    _wait_snapshot_count(root, 1)
+    time.sleep(float(rng.uniform(0.2, 0.8)))
+    first.kill()
+    first.wait(10)
+    stream.extend(rng, 12_000)
+    _produce(kafka_broker.bootstrap, topic, stream.records[12_000:])
+    second = ranktide(*_args(kafka_broker, topic, root), env=slow)
+    time.sleep(float(rng.uniform(1.0, 2.0)))
+    kafka_broker.stop(keep_data=True)   # the broker goes away ...
+    time.sleep(2.0)
+    kafka_broker.start()                # ... and comes back
+    time.sleep(float(rng.uniform(0.5, 1.5)))
+    second.kill()
+    second.wait(10)
+    stream.extend(rng, 6_000)
+    _produce(kafka_broker.bootstrap, topic, stream.records[24_000:])
+    last = ranktide(*_args(kafka_broker, topic, root, "--stop-at-end"))
+    _, err = last.communicate(timeout=300)
+    assert last.returncode == 0, err.decode()[-3000:]
+    manifest = check_snapshot_against(stream, newest_snapshot(root), TOLERANCE)
+    assert manifest["events_applied"] + manifest["events_rejected"] == len(stream.records)
+    assert manifest["events_rejected"] == stream.malformed
+    assert sum(manifest["positions"]["kafka"][topic].values()) == len(stream.records)
+
+
+def test_sigterm_exits_zero_with_a_final_snapshot_and_commits(kafka_broker, tmp_path: Path) -> None:
+    topic = _topic(kafka_broker)
+    root = tmp_path / "snaps"
+    stream = Stream()
+    stream.extend(np.random.default_rng(4), 5_000)
+    _produce(kafka_broker.bootstrap, topic, stream.records)
+    proc = ranktide(*_args(kafka_broker, topic, root, "--snapshot-interval", "3600"))
+    deadline = time.monotonic() + 60
+    committed = 0
+    consumer = Consumer({"bootstrap.servers": kafka_broker.bootstrap, "group.id": f"g-{topic}"})
+    from confluent_kafka import TopicPartition
+
+    parts = [TopicPartition(topic, p) for p in range(3)]
+    time.sleep(3.0)
+    started = time.monotonic()
+    proc.send_signal(signal.SIGTERM)
+    proc.communicate(timeout=30)
+    assert proc.returncode == 0
+    assert time.monotonic() - started < 10
+    manifest = check_snapshot_against(stream, newest_snapshot(root), TOLERANCE)
+    assert manifest["events_applied"] + manifest["events_rejected"] == len(stream.records)
+    while time.monotonic() < deadline and committed < len(stream.records):
+        committed = sum(max(tp.offset, 0) for tp in consumer.committed(parts, timeout=10))
+    consumer.close()
+    assert committed == len(stream.records)  # offsets committed after the final snapshot
+
+
+def test_arrow_batches_and_a_rejects_topic(kafka_broker, tmp_path: Path) -> None:
+    topic = _topic(kafka_broker, partitions=1)
+    rejects_topic = _topic(kafka_broker, partitions=1)
+    root = tmp_path / "snaps"
+    table = pa.table({
+        "op": ["insert", "insert", "insert", "delete", "insert"],
+        "src": ["a", "b", "c", "a", "d"],
+        "dst": ["b", "c", "a", "b", "d"],
+        "weight": [1.0, 2.0, 1.0, None, -3.0],
+        "ts": pa.array([1, 2, 3, 4, 5], pa.int64()),
+    })
+    sink = pa.BufferOutputStream()
+    with pa.ipc.new_stream(sink, table.schema) as writer:
+        writer.write_table(table)
+    _produce(kafka_broker.bootstrap, topic, [(b"k", sink.getvalue().to_pybytes())],
+             headers=[("content-type", ARROW_CONTENT_TYPE.encode())])
+    _produce(kafka_broker.bootstrap, topic, [(b"k", b"{broken")])
+    proc = ranktide(*_args(kafka_broker, topic, root, "--stop-at-end", "--rejects-topic", rejects_topic))
+    _, err = proc.communicate(timeout=120)
+    assert proc.returncode == 0, err.decode()[-3000:]
+    stream = Stream(edges={("b", "c"): 2.0, ("c", "a"): 1.0}, nodes={"a", "b", "c"})
+    manifest = check_snapshot_against(stream, newest_snapshot(root), TOLERANCE)
+    assert (manifest["events_applied"], manifest["events_rejected"]) == (4, 2)
+    consumer = Consumer({"bootstrap.servers": kafka_broker.bootstrap, "group.id": "check",
+                         "auto.offset.reset": "earliest"})
+    consumer.subscribe([rejects_topic])
+    got = []
+    deadline = time.monotonic() + 30
+    while len(got) < 2 and time.monotonic() < deadline:
+        msg = consumer.poll(0.5)
+        if msg is not None and msg.error() is None:
+            got.append(json.loads(msg.value()))
+    consumer.close()
+    reasons = sorted(r["reason"] for r in got)
+    assert len(got) == 2 and all(r["topic"] == topic and r["partition"] == 0 for r in got)
+    assert reasons[0].startswith("not JSON") and "weight must be a finite number > 0" in reasons[1]
+
+
+def test_score_feed_carries_the_latest_score_of_every_changed_node(kafka_broker, tmp_path: Path) -> None:
+    topic = _topic(kafka_broker)
+    feed = _topic(kafka_broker, partitions=1)
+    root = tmp_path / "snaps"
+    stream = Stream()
+    rng = np.random.default_rng(9)
+    stream.extend(rng, 4_000, n_nodes=300)
+    _produce(kafka_broker.bootstrap, topic, stream.records)
+    proc = ranktide(*_args(kafka_broker, topic, root, "--stop-at-end", "--score-topic", feed),
+                    env={"RANKTIDE_SCORE_INTERVAL": "0.2", "RANKTIDE_POLL_RECORDS": "500"})
+    _, err = proc.communicate(timeout=120)
+    assert proc.returncode == 0, err.decode()[-3000:]
+    latest: dict[str, dict] = {}
+    consumer = Consumer({"bootstrap.servers": kafka_broker.bootstrap, "group.id": "feed-check",
+                         "auto.offset.reset": "earliest", "enable.partition.eof": True})
+    consumer.subscribe([feed])
+    deadline = time.monotonic() + 30
+    while time.monotonic() < deadline:
+        msg = consumer.poll(0.5)
+        if msg is None:
+            continue
+        if msg.error() is not None:
+            break  # end of the partition
+        latest[msg.key().decode()] = json.loads(msg.value())
+    consumer.close()
+    snap = newest_snapshot(root)
+    import pyarrow.parquet as pq
+
+    final = {r["node"]: r["score"] for r in pq.read_table(snap / "scores.parquet").to_pylist()
+             if r["profile"] == "global"}
+    assert set(final) == {key.split("/", 1)[1] for key in latest if key.startswith("global/")}
+    for node, score in final.items():
+        sent = latest[f"global/{node}"]
+        assert sent["node"] == node and sent["profile"] == "global"
+        assert abs(sent["score"] - score) <= 0.01 * score + 1e-15
+        assert sent["certified_bound"] <= TOLERANCE
