@@ -58,6 +58,35 @@ class LogChunk:
     end_offset: int
     end_line: int
     raw: callable
+    kafka: tuple[list, np.ndarray, np.ndarray] | None = None  # topic, partition, offset per row (recordings)
+
+    def select(self, keep: np.ndarray) -> "LogChunk":
+        """The chunk restricted to the input rows where ``keep`` is True (renumbered)."""
+        new_index = np.cumsum(keep) - 1
+        p = self.parsed
+        vkeep = keep[p.valid_rows]
+        rkeep = keep[p.rejected_rows] if p.rejected_rows.size else np.zeros(0, bool)
+        rows = np.flatnonzero(vkeep)
+        parsed = Parsed(
+            p.batch.slice(0, len(p.batch)) if vkeep.all() else _take(p.batch, rows),
+            new_index[p.valid_rows[vkeep]],
+            new_index[p.rejected_rows[rkeep]] if rkeep.size else p.rejected_rows,
+            [r for r, k in zip(p.reasons, rkeep) if k],
+        )
+        old_rows = np.flatnonzero(keep)
+        kafka = None
+        if self.kafka is not None:
+            kafka = ([self.kafka[0][i] for i in old_rows], self.kafka[1][old_rows], self.kafka[2][old_rows])
+        raw = self.raw
+        return LogChunk(parsed, self.lines[old_rows], self.offsets[old_rows], self.end_offset, self.end_line,
+                        lambda i: raw(int(old_rows[i])), kafka)
+
+
+def _take(batch, rows: np.ndarray):
+    from solver import EventBatch
+
+    idx = pa.array(rows)
+    return EventBatch(batch.op[rows], batch.src.take(idx), batch.dst.take(idx), batch.weight[rows], batch.ts[rows])
 
 
 def log_format(path: Path) -> str:
@@ -215,11 +244,34 @@ def _convert_cells(cells: list, kind) -> tuple[list, list[int]]:
     return values, bad
 
 
+def _recorded_chunk(table: pa.Table, first_row: int, limits: Limits) -> LogChunk:
+    """Rows of a recording (``ranktide record``): message values decoded as the service does."""
+    from stream.sources import ARROW_CONTENT_TYPE, decode_values
+
+    values = table["value"].to_pylist()
+    kinds = table["content_type"].to_pylist() if "content_type" in table.column_names else [None] * len(values)
+    cols = {name: table[name].to_pylist() for name in ("topic", "partition", "offset") if name in table.column_names}
+    places = [{name: cols[name][i] for name in cols} for i in range(len(values))]
+    decoded = decode_values(values, [k == ARROW_CONTENT_TYPE for k in kinds], places, limits)
+    rows = first_row + np.arange(table.num_rows, dtype=np.int64)
+    end = first_row + table.num_rows
+    kafka = None
+    if {"topic", "partition", "offset"} <= set(cols):
+        kafka = (cols["topic"], np.asarray(cols["partition"], np.int64), np.asarray(cols["offset"], np.int64))
+    return LogChunk(decoded.parsed, rows, rows, end, end, lambda i: _text_of(values[i]), kafka)
+
+
+def _text_of(value: bytes | None) -> str:
+    return (value or b"")[:2000].decode("utf-8", "replace")
+
+
 def _read_parquet(path: Path, limits: Limits, start_row: int, batch_rows: int) -> Iterator[LogChunk]:
     pf = pq.ParquetFile(path)
-    columns = [c for c in FIELDS if c in pf.schema_arrow.names]
-    if "op" not in columns:
-        raise LogError(f"{path}: a Parquet log needs at least an 'op' column (has {pf.schema_arrow.names})")
+    recorded = "value" in pf.schema_arrow.names
+    columns = pf.schema_arrow.names if recorded else [c for c in FIELDS if c in pf.schema_arrow.names]
+    if not recorded and "op" not in columns:
+        raise LogError(f"{path}: a Parquet log needs an 'op' column, or the 'value' column of a recording "
+                       f"(has {pf.schema_arrow.names})")
     row = 0
     for rb in pf.iter_batches(batch_size=batch_rows, columns=columns):
         table = pa.Table.from_batches([rb])
@@ -229,7 +281,7 @@ def _read_parquet(path: Path, limits: Limits, start_row: int, batch_rows: int) -
         if row < start_row:
             table = table.slice(start_row - row)
             row = start_row
-        yield _table_chunk(table, row, limits, first_line=row)
+        yield _recorded_chunk(table, row, limits) if recorded else _table_chunk(table, row, limits, first_line=row)
         row += table.num_rows
 
 

@@ -10,7 +10,9 @@ from pathlib import Path
 
 from solver import EventBatch, Ranker
 from stream.events import Limits
-from stream.snapshots import Counters, write_snapshot
+import numpy as np
+
+from stream.snapshots import Counters, load_snapshot, write_snapshot
 
 from .logs import LogChunk, LogError, read_log
 
@@ -32,6 +34,17 @@ class ReplayOptions:
         Input caps.
     progress : bool
         Show a progress bar on standard error.
+    from_snapshot : Path, optional
+        Start from this snapshot folder instead of an empty graph; the log is
+        read from the snapshot's position in it (or, for a recording of a
+        topic, without the messages the snapshot's offsets cover).
+    until : int or int, optional
+        Stop after this line (JSON Lines) or row number when an ``int``; a
+        time is given as ``Until.time_ms`` (events with a later ts stop it).
+    pace : float, optional
+        Follow the events' timestamps: 1.0 in real time, N times faster.
+    snapshot_every : int
+        Also write a snapshot after every this many records (0: only at the end).
     """
 
     damping: float = 0.85
@@ -40,6 +53,10 @@ class ReplayOptions:
     micro_batch: int = 50_000
     limits: Limits = field(default_factory=Limits)
     progress: bool = False
+    from_snapshot: Path | None = None
+    until: int | float | None = None
+    pace: float | None = None
+    snapshot_every: int = 0
 
 
 @dataclass
@@ -53,6 +70,7 @@ class ReplaySummary:
     bounds: dict[str, float]
     seconds: float
     rejects_file: Path | None
+    snapshots: list[Path] = field(default_factory=list)
 
     def lines(self) -> list[str]:
         c = self.counters
@@ -103,7 +121,8 @@ class RejectsWriter:
         self._fh = None
         self.count = 0
 
-    def write_chunk(self, chunk: LogChunk) -> None:
+    def write_chunk(self, chunk: LogChunk, upto: int | None = None) -> None:
+        """Append the chunk's rejects (those of input rows below ``upto`` only, when given)."""
         p = chunk.parsed
         if not p.reasons:
             return
@@ -111,6 +130,8 @@ class RejectsWriter:
             self.path.parent.mkdir(parents=True, exist_ok=True)
             self._fh = open(self.path, "a", encoding="utf-8")
         for row, reason in zip(p.rejected_rows, p.reasons):
+            if upto is not None and row >= upto:
+                break
             rec = {
                 "source": self.source,
                 "line": int(chunk.lines[row]),
@@ -119,7 +140,7 @@ class RejectsWriter:
                 "record": chunk.raw(int(row))[:2000],
             }
             self._fh.write(json.dumps(rec, ensure_ascii=False) + "\n")
-        self.count += len(p.reasons)
+            self.count += 1
 
     def close(self) -> None:
         if self._fh is not None:
@@ -127,14 +148,18 @@ class RejectsWriter:
             self._fh = None
 
 
-def apply_chunk(ranker: Ranker, chunk: LogChunk, counters: Counters, micro_batch: int) -> None:
-    """Apply a chunk's valid events in micro-batches, settling after each."""
-    batch = chunk.parsed.batch
+def apply_events(ranker: Ranker, batch: EventBatch, counters: Counters, micro_batch: int) -> None:
+    """Apply valid events in micro-batches, settling after each."""
     for start in range(0, len(batch), micro_batch):
         part = batch.slice(start, start + micro_batch)
         counters.events_noop += ranker.apply(part)
         counters.events_applied += len(part)
         ranker.settle()
+
+
+def apply_chunk(ranker: Ranker, chunk: LogChunk, counters: Counters, micro_batch: int) -> None:
+    """Apply a whole chunk: its valid events, and count its rejects."""
+    apply_events(ranker, chunk.parsed.batch, counters, micro_batch)
     counters.events_rejected += len(chunk.parsed.reasons)
 
 
@@ -146,45 +171,229 @@ def seed_personalizations(ranker: Ranker, personalizations: dict[str, Path]) -> 
             ranker.apply(EventBatch.seeds(name, nodes, weights))
 
 
+@dataclass
+class Segment:
+    """Input rows ``[start, stop)`` of a chunk, with what follows them."""
+
+    start: int
+    stop: int
+    snapshot_after: bool = False
+    stop_after: bool = False
+    wall_offset: float | None = None  # seconds after the replay's start, when paced
+
+
+class _Plan:
+    """Where a chunk is cut: --snapshot-every, --until and --pace."""
+
+    def __init__(self, options: "ReplayOptions", records_before: int) -> None:
+        self.options = options
+        self.records = records_before
+        self.ts0: int | None = None
+
+    def segments(self, chunk: LogChunk) -> list[Segment]:
+        n = int(chunk.lines.size)
+        cuts: dict[int, Segment] = {}
+        stop_row = self._until_row(chunk)
+        every = self.options.snapshot_every
+        if every:
+            first = every - self.records % every
+            for r in range(first, min(n, stop_row) + 1, every):
+                cuts.setdefault(r, Segment(0, r)).snapshot_after = True
+        if stop_row < n or (stop_row == n and self._until_hit_at_end(chunk)):
+            cuts.setdefault(stop_row, Segment(0, stop_row)).stop_after = True
+        paced = self._pace_rows(chunk, min(n, stop_row))
+        for r, wall in paced.items():
+            cuts.setdefault(r, Segment(0, r))
+        out, begin = [], 0
+        for r in sorted(cuts):
+            if r <= 0 and not cuts[r].stop_after:
+                continue
+            seg = cuts[r]
+            seg.start, seg.stop = begin, r
+            seg.wall_offset = paced.get(begin)
+            out.append(seg)
+            begin = r
+            if seg.stop_after:
+                return out
+        if begin < n:
+            out.append(Segment(begin, n, wall_offset=paced.get(begin)))
+        return out
+
+    def _until_row(self, chunk: LogChunk) -> int:
+        until = self.options.until
+        n = int(chunk.lines.size)
+        if until is None:
+            return n + 1
+        if isinstance(until, int):
+            return int(np.searchsorted(chunk.lines, until, side="right"))
+        ts = chunk.parsed.batch.ts
+        late = np.flatnonzero(ts > until)
+        return int(chunk.parsed.valid_rows[late[0]]) if late.size else n + 1
+
+    def _until_hit_at_end(self, chunk: LogChunk) -> bool:
+        until = self.options.until
+        return isinstance(until, int) and chunk.lines.size > 0 and chunk.lines[-1] >= until
+
+    def _pace_rows(self, chunk: LogChunk, limit: int) -> dict[int, float]:
+        """Rows where a paced replay waits, with the wall-clock offset to wait for."""
+        speed = self.options.pace
+        ts = chunk.parsed.batch.ts
+        rows = chunk.parsed.valid_rows
+        keep = (ts >= 0) & (rows < limit)
+        if not speed or not keep.any():
+            return {}
+        ts, rows = ts[keep], rows[keep]
+        if self.ts0 is None:
+            self.ts0 = int(ts[0])
+        wall = (ts - self.ts0) / 1000.0 / speed
+        window = np.floor(wall / PACE_WINDOW)
+        starts = np.concatenate(([0], np.flatnonzero(np.diff(window)) + 1))
+        return {int(rows[i]): float(wall[i]) for i in starts}
+
+    def advance(self, records: int) -> None:
+        self.records += records
+
+
+#: Paced replays apply events in windows of this many seconds of (scaled) time.
+PACE_WINDOW = 0.05
+
+
+def _segment_batch(chunk: LogChunk, seg: Segment) -> tuple[EventBatch, int]:
+    """Valid events and reject count of input rows ``[seg.start, seg.stop)``."""
+    p = chunk.parsed
+    lo, hi = np.searchsorted(p.valid_rows, [seg.start, seg.stop])
+    rlo, rhi = np.searchsorted(p.rejected_rows, [seg.start, seg.stop])
+    return p.batch.slice(int(lo), int(hi)), int(rhi - rlo)
+
+
+def _position_after(chunk: LogChunk, row: int) -> tuple[int, int]:
+    """(offset, lines read) once input rows below ``row`` are consumed."""
+    if row >= chunk.lines.size:
+        return chunk.end_offset, chunk.end_line
+    return int(chunk.offsets[row]), int(chunk.lines[row]) - 1
+
+
+class _Replay:
+    """State of one replay run."""
+
+    def __init__(self, log: Path, out: Path, options: "ReplayOptions") -> None:
+        self.log, self.out, self.options = Path(log), Path(out), options
+        self.key = str(self.log.resolve())
+        self.rejects = RejectsWriter(self.out / "rejects.jsonl", str(self.log))
+        self.ranker, self.counters, self.offset, self.line, self.skip = self._start()
+        self.written: list[Path] = []
+        self.started_wall = time.monotonic()
+
+    def _start(self):
+        if self.options.from_snapshot is None:
+            ranker = Ranker(damping=self.options.damping, tolerance=self.options.tolerance)
+            seed_personalizations(ranker, self.options.personalizations)
+            return ranker, Counters(), 0, 0, {}
+        snap = load_snapshot(self.options.from_snapshot)
+        positions = snap.manifest.get("positions", {})
+        mine = positions.get("files", {}).get(self.key, {"offset": 0, "line": 0})
+        # a recording of a topic: skip what the snapshot's partition offsets cover
+        skip = {(t, int(p)): int(o) for t, parts in positions.get("kafka", {}).items() for p, o in parts.items()}
+        return snap.ranker, snap.counters, int(mine["offset"]), int(mine["line"]), skip
+
+    def positions(self) -> dict:
+        out = {"files": {self.key: {"offset": self.offset, "line": self.line}}}
+        if self.skip:
+            out["kafka"] = {}
+            for (topic, part), off in sorted(self.skip.items()):
+                out["kafka"].setdefault(topic, {})[str(part)] = off
+        return out
+
+    def snapshot(self) -> Path:
+        path = write_snapshot(self.out, self.ranker, self.counters, self.positions())
+        self.written.append(path)
+        return path
+
+    def run(self, bar) -> None:
+        opts = self.options
+        plan = _Plan(opts, self.counters.events_applied + self.counters.events_rejected)
+        chunks = read_log(self.log, opts.limits, self.offset, self.line + 1)
+        for chunk in chunks:
+            chunk = self._drop_covered(chunk)
+            for seg in plan.segments(chunk):
+                self._wait(seg)
+                batch, rejected = _segment_batch(chunk, seg)
+                apply_events(self.ranker, batch, self.counters, opts.micro_batch)
+                self.counters.events_rejected += rejected
+                self.offset, self.line = _position_after(chunk, seg.stop)
+                self._note_kafka(chunk, seg)
+                plan.advance(seg.stop - seg.start)
+                if seg.snapshot_after:
+                    self.snapshot()
+                if seg.stop_after:
+                    self.rejects.write_chunk(chunk, upto=seg.stop)
+                    return
+            self.rejects.write_chunk(chunk)
+            if bar is not None:
+                bar.update(chunk.end_offset - bar.n)
+                bar.set_postfix(events=f"{self.counters.events_applied:,}",
+                                bound=f"{self.ranker.certified_bound():.2g}")
+
+    def _wait(self, seg: Segment) -> None:
+        if seg.wall_offset is not None:
+            delay = self.started_wall + seg.wall_offset - time.monotonic()
+            if delay > 0:
+                time.sleep(delay)
+
+    def _drop_covered(self, chunk: LogChunk) -> LogChunk:
+        """Drop the rows of a recording that the starting snapshot already covers."""
+        if not self.skip or chunk.kafka is None:
+            return chunk
+        topics, parts, offsets = chunk.kafka
+        starts = np.array([self.skip.get((t, int(p)), 0) for t, p in zip(topics, parts)], dtype=np.int64)
+        keep = offsets >= starts
+        return chunk if keep.all() else chunk.select(keep)
+
+    def _note_kafka(self, chunk: LogChunk, seg: Segment) -> None:
+        """Advance the per-partition positions of a recording past the segment's rows."""
+        if chunk.kafka is None or seg.stop <= seg.start:
+            return
+        topics, parts, offsets = chunk.kafka
+        t = np.asarray(topics[seg.start:seg.stop], dtype=object)
+        p, o = parts[seg.start:seg.stop], offsets[seg.start:seg.stop]
+        for topic in set(t.tolist()):
+            in_topic = t == topic
+            for part in np.unique(p[in_topic]):
+                top = int(o[in_topic & (p == part)].max()) + 1
+                key = (topic, int(part))
+                self.skip[key] = max(self.skip.get(key, 0), top)
+
+
 def replay_log(log: Path, out: Path, options: ReplayOptions = ReplayOptions()) -> ReplaySummary:
-    """Replay ``log`` from an empty graph and write one snapshot under ``out``.
+    """Replay ``log`` (from an empty graph or ``options.from_snapshot``) into snapshots under ``out``.
 
     Raises
     ------
     LogError
         When the log (or a seeds file) cannot be read at all.
+    SnapshotError
+        When the starting snapshot cannot be read, or a snapshot not written.
     """
     started = time.perf_counter()
-    log = Path(log)
-    ranker = Ranker(damping=options.damping, tolerance=options.tolerance)
-    seed_personalizations(ranker, options.personalizations)
-    counters = Counters()
-    rejects = RejectsWriter(Path(out) / "rejects.jsonl", str(log))
-    bar = _progress(log, options.progress)
-    end_offset, last_line = 0, 0
+    state = _Replay(log, out, options)
+    bar = _progress(Path(log), options.progress)
     try:
-        for chunk in read_log(log, options.limits):
-            apply_chunk(ranker, chunk, counters, options.micro_batch)
-            rejects.write_chunk(chunk)
-            end_offset = chunk.end_offset
-            last_line = int(chunk.lines[-1]) if chunk.lines.size else last_line
-            if bar is not None:
-                bar.update(chunk.end_offset - bar.n)
-                bar.set_postfix(events=f"{counters.events_applied:,}", bound=f"{ranker.certified_bound():.2g}")
+        state.run(bar)
     finally:
-        rejects.close()
+        state.rejects.close()
         if bar is not None:
             bar.close()
-    positions = {"file": str(log.resolve()), "offset": end_offset, "line": last_line}
-    path = write_snapshot(Path(out), ranker, counters, positions)
+    path = state.snapshot()
+    ranker = state.ranker
     return ReplaySummary(
         snapshot=path,
-        counters=counters,
+        counters=state.counters,
         nodes=ranker.engine.n_nodes,
         edges=ranker.engine.n_edges,
         bounds={name: ranker.certified_bound(name) for name in ranker.profiles},
         seconds=time.perf_counter() - started,
-        rejects_file=rejects.path if rejects.count else None,
+        rejects_file=state.rejects.path if state.rejects.count else None,
+        snapshots=state.written,
     )
 
 

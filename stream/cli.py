@@ -19,6 +19,25 @@ snapshots. Events are JSON objects such as
 """
 
 
+def _until(text: str) -> int | float:
+    """A line/row number (digits) or an ISO-8601 time (returned in ms since the epoch)."""
+    if text.isdigit():
+        return int(text)
+    from stream.events import _ts_millis
+
+    millis, reason = _ts_millis(text)
+    if reason:
+        raise argparse.ArgumentTypeError(f"expected a line number or ISO-8601 time, got {text!r}")
+    return float(millis)
+
+
+def _pace(text: str) -> float:
+    if text == "original":
+        return 1.0
+    value = _positive_float(text)
+    return value
+
+
 def _positive_float(text: str) -> float:
     value = float(text)
     if not (value > 0 and math.isfinite(value)):
@@ -54,12 +73,21 @@ def _cmd_replay(args: argparse.Namespace) -> int:
     from replay.replay import ReplayOptions, replay_log
     from stream.snapshots import SnapshotError
 
+    damping, tolerance = args.damping, args.tolerance
+    if args.from_snapshot is not None and (damping is not None or tolerance is not None):
+        print("ranktide replay: error: --from keeps the snapshot's damping and tolerance; "
+              "drop --damping/--tolerance", file=sys.stderr)
+        return 2
     options = ReplayOptions(
-        damping=0.85 if args.damping is None else args.damping,
-        tolerance=1e-6 if args.tolerance is None else args.tolerance,
+        damping=0.85 if damping is None else damping,
+        tolerance=1e-6 if tolerance is None else tolerance,
         personalizations=dict(args.personalization or []),
         micro_batch=args.micro_batch,
         progress=not args.quiet and sys.stderr.isatty(),
+        from_snapshot=args.from_snapshot,
+        until=args.until,
+        pace=args.pace,
+        snapshot_every=args.snapshot_every,
     )
     try:
         summary = replay_log(args.log, args.out, options)
@@ -68,6 +96,8 @@ def _cmd_replay(args: argparse.Namespace) -> int:
         return 2
     if not args.quiet:
         print("\n".join(summary.lines()))
+        if len(summary.snapshots) > 1:
+            print(f"series         {len(summary.snapshots)} snapshots under {args.out}")
     return 0
 
 
@@ -151,6 +181,12 @@ def _cmd_score(args: argparse.Namespace) -> int:
     return print_scores(args.root, args.nodes, args.profile, as_json=args.json)
 
 
+def _cmd_record(args: argparse.Namespace) -> int:
+    from replay.record import run_record
+
+    return run_record(args)
+
+
 def _cmd_audit(args: argparse.Namespace) -> int:
     from replay.audit import run_audit
 
@@ -193,6 +229,17 @@ def build_parser() -> argparse.ArgumentParser:
                    help="add a personalized profile seeded from a file (one node per line, optionally "
                         "node,weight); may be repeated")
     p.add_argument("--micro-batch", type=int, default=50_000, help="events applied between settles (default 50000)")
+    p.add_argument("--from", dest="from_snapshot", type=Path, metavar="SNAPSHOT",
+                   help="start from this snapshot folder instead of an empty graph; the log is read from the "
+                        "snapshot's position in it (a recording skips the messages the snapshot covers)")
+    p.add_argument("--until", type=_until, metavar="POSITION|TIME",
+                   help="stop after this line (row, for Parquet and CSV) or before the first event later than "
+                        "this ISO-8601 time")
+    p.add_argument("--pace", type=_pace, metavar="original|N",
+                   help="follow the events' timestamps: 'original' in real time, N times faster "
+                        "(default: as fast as possible)")
+    p.add_argument("--snapshot-every", type=int, default=0, metavar="N",
+                   help="also write a snapshot after every N records, leaving a series")
     p.add_argument("--quiet", action="store_true", help="print nothing but errors")
     p.set_defaults(func=_cmd_replay)
 
@@ -247,6 +294,16 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--profile", default="global")
     p.add_argument("--json", action="store_true")
     p.set_defaults(func=_cmd_score)
+
+    p = sub.add_parser("record", help="copy a Kafka topic into a Parquet event log",
+                       description="Copy every partition of a topic, from its start, into a Parquet log with "
+                                   "topic, partition, offset, timestamp, content_type and value columns. "
+                                   "ranktide replay reads it and decides every record as the service did.")
+    p.add_argument("--source", required=True, help="kafka://HOST:PORT[,HOST:PORT...]/TOPIC[,TOPIC...]")
+    p.add_argument("--out", type=Path, required=True, metavar="LOG.parquet", help="the Parquet log to write")
+    p.add_argument("--until-end", action="store_true",
+                   help="stop at the end offsets seen at start (default: follow until SIGINT/SIGTERM)")
+    p.set_defaults(func=_cmd_record)
 
     p = sub.add_parser("audit", help="check a snapshot's scores against an exact recompute from scratch",
                        description="Recompute every profile's scores from scratch (cold, to 1e-12) on the "

@@ -136,30 +136,24 @@ def _tables(ranker: Ranker) -> dict[str, pa.Table]:
             seed_prof.append(pa.array(np.full(seeded.size, name, dtype=object), pa.string()))
             seed_w.append(pa.array(s[seeded]))
     src, dst, w = eng.graph.edge_list()
-    order = np.lexsort((dst, src))  # a stable, readable order
+    edges = pa.table({"src": names.take(pa.array(src)), "dst": names.take(pa.array(dst)), "weight": pa.array(w)})
+    scores = pa.table({
+        "node": pa.concat_arrays(node_cols),
+        "profile": pa.concat_arrays(prof_cols),
+        "score": pa.concat_arrays(score_cols).cast(pa.float64()),
+    })
     empty = pa.array([], pa.string())
+    # sorted by name, so that equal states give equal files whatever their history
     return {
-        "scores.parquet": pa.table(
-            {
-                "node": pa.concat_arrays(node_cols),
-                "profile": pa.concat_arrays(prof_cols),
-                "score": pa.concat_arrays(score_cols).cast(pa.float64()),
-            }
-        ),
-        "edges.parquet": pa.table(
-            {
-                "src": names.take(pa.array(src[order])),
-                "dst": names.take(pa.array(dst[order])),
-                "weight": pa.array(w[order]),
-            }
-        ),
+        "scores.parquet": scores.sort_by([("profile", "ascending"), ("node", "ascending")]),
+        "edges.parquet": edges.sort_by([("src", "ascending"), ("dst", "ascending")]),
         "seeds.parquet": pa.table(
             {
                 "profile": pa.concat_arrays(seed_prof) if seed_prof else empty,
                 "node": pa.concat_arrays(seed_node) if seed_node else empty,
                 "weight": pa.concat_arrays(seed_w).cast(pa.float64()) if seed_w else pa.array([], pa.float64()),
             }
-        ),
+        ).sort_by([("profile", "ascending"), ("node", "ascending")]),
     }
 
 

@@ -166,32 +166,51 @@ def parse_kafka_url(url: str) -> tuple[str, list[str]]:
 
 def decode_messages(messages: list, limits: Limits) -> SourceChunk:
     """Parse Kafka messages: JSON values, or Arrow IPC streams marked by a header."""
-    json_values, json_places, arrow_parts = [], [], []
-    for msg in messages:
-        place = {"topic": msg.topic(), "partition": msg.partition(), "offset": msg.offset()}
-        value = msg.value()
-        if _is_arrow(msg):
-            arrow_parts.append((place, value))
-        else:
-            json_values.append(value if value is not None else b"")
-            json_places.append(place)
+    return decode_values(
+        [m.value() for m in messages],
+        [_is_arrow(m) for m in messages],
+        [{"topic": m.topic(), "partition": m.partition(), "offset": m.offset()} for m in messages],
+        limits,
+    )
+
+
+def decode_values(values: list, is_arrow: list[bool], places: list[dict], limits: Limits) -> SourceChunk:
+    """Parse message values in order: runs of JSON values, and Arrow IPC streams.
+
+    Used for live messages and for recorded logs alike, so that a replay of a
+    recording decides every record exactly as the service did.
+    """
     parts: list[Parsed] = []
-    places: list[dict] = []
+    reject_places: list[dict] = []
+    reject_index: list[int] = []
+    valid_index: list[np.ndarray] = []
     records = 0
-    if json_values:
-        parsed = parse_json_records(json_values, limits)
-        parts.append(parsed)
-        records += len(json_values)
-        places += [{**json_places[r], "record": _text(json_values[r])} for r in parsed.rejected_rows]
-    for place, value in arrow_parts:
-        parsed, n = _decode_arrow(value, limits)
+    i = 0
+    while i < len(values):
+        if is_arrow[i]:
+            parsed, n = _decode_arrow(values[i], limits)
+            reject_places += [{**places[i], "row": int(r), "record": ""} for r in parsed.rejected_rows]
+            reject_index += [i] * len(parsed.rejected_rows)
+            valid_index.append(np.full(len(parsed.batch), i, dtype=np.int64))
+            i += 1
+        else:
+            j = i
+            while j < len(values) and not is_arrow[j]:
+                j += 1
+            run = [v if v is not None else b"" for v in values[i:j]]
+            parsed, n = parse_json_records(run, limits), j - i
+            reject_places += [{**places[i + r], "record": _text(run[r])} for r in parsed.rejected_rows]
+            reject_index += [i + int(r) for r in parsed.rejected_rows]
+            valid_index.append(i + parsed.valid_rows)
+            i = j
         parts.append(parsed)
         records += n
-        places += [{**place, "row": int(r), "record": ""} for r in parsed.rejected_rows]
     batch = EventBatch.concat([p.batch for p in parts])
     reasons = [r for p in parts for r in p.reasons]
-    merged = Parsed(batch, np.zeros(0, np.int64), np.arange(len(reasons), dtype=np.int64), reasons)
-    return SourceChunk(merged, places, records)
+    # rows are message indices (an Arrow message holds many events)
+    valid = np.concatenate(valid_index) if valid_index else np.zeros(0, np.int64)
+    merged = Parsed(batch, valid.astype(np.int64), np.array(reject_index, dtype=np.int64), reasons)
+    return SourceChunk(merged, reject_places, records)
 
 
 def _is_arrow(msg) -> bool:
