@@ -188,3 +188,28 @@ def test_score_feed_carries_the_latest_score_of_every_changed_node(kafka_broker,
         assert sent["node"] == node and sent["profile"] == "global"
         assert abs(sent["score"] - score) <= 0.01 * score + 1e-15
         assert sent["certified_bound"] <= TOLERANCE
+
+
+def test_record_then_replay_reproduces_the_service_snapshot(kafka_broker, tmp_path: Path) -> None:
+    from replay.record import record_topic
+    from replay.replay import ReplayOptions, replay_log
+
+    topic = _topic(kafka_broker)
+    stream = Stream()
+    stream.extend(np.random.default_rng(13), 6_000)
+    _produce(kafka_broker.bootstrap, topic, stream.records)
+    proc = ranktide(*_args(kafka_broker, topic, tmp_path / "live", "--stop-at-end"))
+    _, err = proc.communicate(timeout=120)
+    assert proc.returncode == 0, err.decode()[-3000:]
+    recording = tmp_path / "topic.parquet"
+    assert record_topic(f"kafka://{kafka_broker.bootstrap}/{topic}", recording, until_end=True) == len(stream.records)
+    replayed = replay_log(recording, tmp_path / "replayed")
+    live = newest_snapshot(tmp_path / "live")
+    live_manifest = json.loads((live / "manifest.json").read_text())
+    for key in ("events_applied", "events_noop", "events_rejected"):
+        assert getattr(replayed.counters, key) == live_manifest[key]
+    assert (replayed.snapshot / "edges.parquet").read_bytes() == (live / "edges.parquet").read_bytes()
+    check_snapshot_against(stream, replayed.snapshot, TOLERANCE)
+    # a replay of the recording from the live snapshot has nothing left to add
+    again = replay_log(recording, tmp_path / "live", ReplayOptions(from_snapshot=live))
+    assert again.counters.events_applied == live_manifest["events_applied"]
