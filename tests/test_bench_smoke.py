@@ -1,0 +1,76 @@
+"""Smoke test of ``ranktide bench`` in its smallest mode (no timing assertions).
+
+Runs ``ranktide bench --size tiny --batches 1,10,100 --json --skip-e2e`` in a
+subprocess and checks that the one JSON object it prints has the headline
+keys, that the figures are finite and positive, and that every measured
+error of the incremental engine lies within its certified bound, itself
+within the tolerance 1e-6.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import subprocess
+import sys
+
+import pytest
+
+TOLERANCE = 1e-6
+#: The reference is an exact solve certified to 1e-11; its own error may show.
+REFERENCE_SLACK = 1e-10
+
+
+@pytest.fixture(scope="module")
+def report() -> dict:
+    cmd = [sys.executable, "-m", "stream.cli", "bench", "--size", "tiny", "--batches", "1,10,100",
+           "--repeats", "2", "--profiles", "1", "--json", "--skip-e2e"]
+    done = subprocess.run(cmd, capture_output=True, text=True, timeout=900)
+    assert done.returncode == 0, done.stderr[-3000:]
+    return json.loads(done.stdout)
+
+
+def _positive(value) -> bool:
+    return isinstance(value, (int, float)) and math.isfinite(value) and value > 0
+
+
+def test_headline_keys_are_finite_and_positive(report: dict) -> None:
+    for key in ("speedup_vs_warm_start", "events_per_second", "events_per_second_apply_only"):
+        assert _positive(report[key]), (key, report[key])
+    assert report["end_to_end_events_per_second"] is None
+    assert report["end_to_end"]["skipped"]
+    assert report["speedup_vs_warm_start_batch"] == 100
+
+
+def test_every_batch_size_is_measured_by_every_contender(report: dict) -> None:
+    assert [row["batch"] for row in report["batches"]] == [1, 10, 100]
+    for row in report["batches"]:
+        for name in ("ranktide", "warm_start", "cold_start", "igraph_prpack", "networkx"):
+            assert _positive(row[name]["seconds_per_batch"]), (row["batch"], name)
+            assert _positive(row[name]["seconds_per_event"]), (row["batch"], name)
+        for name, ratio in row["speedup"].items():
+            assert _positive(ratio), (row["batch"], name)
+
+
+def test_measured_error_within_certified_bound_within_tolerance(report: dict) -> None:
+    rows = report["batches"] + report["real_graph"]["batches"] + [report["personalized"]]
+    for row in rows:
+        ours = row["ranktide"]
+        assert ours["max_certified_bound"] <= TOLERANCE, row["batch"]
+        assert ours["max_error"] <= ours["max_certified_bound"] + REFERENCE_SLACK, row["batch"]
+        for name in ("warm_start", "cold_start"):
+            assert row[name]["max_error"] <= TOLERANCE + REFERENCE_SLACK, (row["batch"], name)
+
+
+def test_other_sections_report_positive_figures(report: dict) -> None:
+    load = report["load"]
+    for key in ("load_seconds", "resolve_seconds", "bytes_per_edge", "peak_rss_bytes_after_load"):
+        assert _positive(load[key]), key
+    assert report["throughput"]["certified_bound_after"] <= TOLERANCE
+    assert _positive(report["snapshot"]["write_seconds"]) and _positive(report["snapshot"]["load_seconds"])
+    assert report["snapshot"]["round_trip_same_size"]
+    for fmt in ("jsonl", "parquet"):
+        part = report["replay"][fmt]
+        assert _positive(part["ratio"]), fmt
+        assert part["events_applied"] == report["replay"]["events"], fmt
+    assert report["machine"]["nproc"] >= 1
