@@ -47,6 +47,9 @@ class ServiceConfig:
         Snapshot root folder.
     group : str
         Kafka consumer group.
+    owner_topic : str
+        One-partition topic whose holder owns the graph among the group's
+        processes (default ``GROUP.owner``, created when missing).
     tolerance, damping : float
         Engine parameters.
     snapshot_interval : float
@@ -87,6 +90,7 @@ class ServiceConfig:
     source: str = ""
     out: str = "ranktide-out"
     group: str = "ranktide"
+    owner_topic: str = ""
     tolerance: float = 1e-6
     damping: float = 0.85
     snapshot_interval: float = 60.0

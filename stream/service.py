@@ -155,6 +155,9 @@ class Service:
         self.source: Source | None = None
         self._dirty = False     # events applied since the last snapshot
         self._closing = False
+        self._owner = False     # this process owns the graph (always, for a file source)
+        self._events_at_snapshot = 0
+        self._last_snapshot = time.monotonic()
 
     # -------------------------------------------------------------- lifecycle
     def request_stop(self, *_args) -> None:
@@ -166,12 +169,15 @@ class Service:
         signal.signal(signal.SIGINT, self.request_stop)
 
     def _restore(self, rejects: RejectsSink) -> dict:
+        """Load the newest good snapshot (or start empty); return its source positions."""
         snap = load_latest(self.out)
         if snap is None:
             self.ranker = Ranker(damping=self.cfg.damping, tolerance=self.cfg.tolerance)
             from replay.replay import seed_personalizations
 
             seed_personalizations(self.ranker, {k: Path(v) for k, v in self.cfg.personalizations.items()})
+            self.counters = Counters()
+            rejects.truncate(0)
             log.info("no snapshot under %s: starting from an empty graph", self.out)
             return {}
         self.ranker = snap.ranker
@@ -181,25 +187,47 @@ class Service:
                  self.counters.events_applied, self.counters.events_rejected)
         return snap.manifest.get("positions", {})
 
+    def _take_over(self, rejects: RejectsSink) -> None:
+        """Become the owner: state from the newest snapshot, source at its positions."""
+        self.source.seek(self._restore(rejects))
+        self._owner = True
+        self._events_at_snapshot = self.counters.events_applied + self.counters.events_rejected
+        self._last_snapshot = time.monotonic()
+
+    def _hand_over(self, rejects: RejectsSink) -> None:
+        """Ownership is going: make everything applied durable, then stop consuming."""
+        if not self._owner:
+            return
+        if self._dirty and not self._closing:
+            self._snapshot(rejects, reason="handover")
+        self.source.release()
+        self._owner = False
+        self.ranker = None
+
     def run(self) -> int:
         """Run until stopped; return the process exit code."""
         cfg = self.cfg
-        log.info("starting with %s", json.dumps({**cfg.redacted(), "kafka": redact(cfg.kafka)}, default=str))
+        log.info("starting with %s", json.dumps(cfg.redacted(), default=str))
         bootstrap = cfg.source[len("kafka://"):].split("/")[0] if cfg.source.startswith("kafka://") else None
         rejects = RejectsSink(cfg.rejects, self.out, cfg.kafka, bootstrap)
-        positions = self._restore(rejects)
         self.source = open_source(cfg.source, cfg.group, cfg.kafka, self.limits, cfg.poll_records,
                                   cfg.file_chunk_bytes)
-        self.source.seek(positions)
-        if hasattr(self.source, "set_revoke_hook"):
-            self.source.set_revoke_hook(lambda parts: self._on_revoke(rejects))
+        lock = None
+        if bootstrap:
+            from stream.sources import OwnerLock
+
+            lock = OwnerLock(bootstrap, cfg.group, cfg.owner_topic or f"{cfg.group}.owner", cfg.kafka,
+                             on_lost=lambda: self._hand_over(rejects))
+            log.info("waiting to own the graph (group %s)", cfg.group)
+        else:
+            self._take_over(rejects)
         feed = ScoreFeed(cfg.score_topic, bootstrap, cfg.kafka, cfg.score_threshold, cfg.score_interval) \
             if cfg.score_topic and bootstrap else None
         server = start_metrics_server(cfg.metrics, self.metrics) if cfg.metrics else None
-        last_snapshot = time.monotonic()
-        events_at_snapshot = self.counters.events_applied + self.counters.events_rejected
         try:
             while not self._stop.is_set():
+                if lock is not None and not self._follow_lock(lock, rejects):
+                    continue
                 chunk = self.source.poll(timeout=0.5)
                 if chunk is not None:
                     self._apply(chunk)
@@ -208,26 +236,40 @@ class Service:
                 self.metrics.lag = self.source.lag()
                 if feed is not None and self._dirty and feed.due():
                     self.metrics.feed_sent += feed.publish(self.ranker, self.source.positions())
-                seen = self.counters.events_applied + self.counters.events_rejected
-                by_count = cfg.snapshot_events > 0 and seen - events_at_snapshot >= cfg.snapshot_events
-                if self._dirty and (by_count or time.monotonic() - last_snapshot >= cfg.snapshot_interval):
-                    self._snapshot(rejects)
-                    last_snapshot, events_at_snapshot = time.monotonic(), seen
+                self._snapshot_if_due(rejects)
                 if cfg.stop_at_end and chunk is None and self.source.at_end():
                     log.info("source exhausted: stopping")
                     break
-            self._snapshot(rejects, reason="final")
-            if feed is not None:
-                feed.publish(self.ranker, self.source.positions())
+            if self._owner:
+                self._snapshot(rejects, reason="final")
+                if feed is not None:
+                    feed.publish(self.ranker, self.source.positions())
         except SnapshotError as exc:
             log.error("%s", exc)
             return 3
         finally:
             self._closing = True
+            if lock is not None:
+                lock.close()
             self.source.close()
             if server is not None:
                 server.shutdown()
         return 0
+
+    def _follow_lock(self, lock, rejects: RejectsSink) -> bool:
+        """Serve the owner lock; True when this process owns the graph and may consume."""
+        held = lock.held(0.0 if self._owner else 0.2)
+        if held and not self._owner:
+            self._take_over(rejects)
+        return held and self._owner
+
+    def _snapshot_if_due(self, rejects: RejectsSink) -> None:
+        seen = self.counters.events_applied + self.counters.events_rejected
+        every = self.cfg.snapshot_events
+        by_count = every > 0 and seen - self._events_at_snapshot >= every
+        if self._dirty and (by_count or time.monotonic() - self._last_snapshot >= self.cfg.snapshot_interval):
+            self._snapshot(rejects)
+            self._last_snapshot, self._events_at_snapshot = time.monotonic(), seen
 
     # -------------------------------------------------------------- work
     def _apply(self, chunk: SourceChunk) -> None:
@@ -243,11 +285,6 @@ class Service:
         self.counters.events_rejected += len(chunk.parsed.reasons)
         self.metrics.record_batch(len(batch), len(chunk.parsed.reasons), time.perf_counter() - started)
         self.metrics.bounds = {p: self.ranker.certified_bound(p) for p in self.ranker.profiles}
-
-    def _on_revoke(self, rejects: RejectsSink) -> None:
-        """Partitions are being taken away: make what was applied from them durable first."""
-        if self._dirty and not self._closing:
-            self._snapshot(rejects, reason="rebalance")
 
     def _snapshot(self, rejects: RejectsSink, reason: str = "interval") -> Path:
         started = time.perf_counter()

@@ -56,6 +56,7 @@ class Source(Protocol):
     def poll(self, timeout: float) -> SourceChunk | None: ...
     def positions(self) -> dict: ...
     def seek(self, positions: dict) -> None: ...
+    def release(self) -> None: ...
     def commit(self, positions: dict) -> None: ...
     def at_end(self) -> bool: ...
     def lag(self) -> dict[str, int]: ...
@@ -100,6 +101,9 @@ class FileSource:
 
     def commit(self, positions: dict) -> None:
         """Nothing to tell a file: its position lives in the snapshot."""
+
+    def release(self) -> None:
+        """A file source has a single owner: nothing to hand over."""
 
     def poll(self, timeout: float) -> SourceChunk | None:
         for f in self._files():
@@ -238,10 +242,13 @@ def _text(value: bytes) -> str:
 class KafkaSource:
     """All partitions of one or more topics, consumed in large batches.
 
-    Offsets are never auto-committed: :meth:`commit` is called by the service
-    only after the snapshot that includes them is durable. On assignment
-    every partition is positioned at the snapshot's recorded next offset when
-    there is one, else at the group's committed offset, else at the start.
+    The consumer assigns itself every partition (no group subscription): a
+    graph needs all of its events, so partitions are never split between
+    processes. Offsets are committed to the group only by :meth:`commit`,
+    which the service calls after the snapshot that includes them is durable.
+    :meth:`seek` positions every partition at a snapshot's recorded next
+    offset; a partition the snapshot does not name starts from its beginning
+    (the snapshot, not the group's committed offset, is the truth).
     """
 
     def __init__(self, url: str, group: str, properties: dict[str, str], limits: Limits = Limits(),
@@ -249,6 +256,8 @@ class KafkaSource:
         from confluent_kafka import Consumer
 
         self.bootstrap, self.topics = parse_kafka_url(url)
+        self.group = group
+        self.properties = properties
         self.limits = limits
         self.batch_records = batch_records
         conf = {
@@ -265,52 +274,48 @@ class KafkaSource:
         }
         self._consumer = Consumer(conf, logger=log)
         self._next: dict[tuple[str, int], int] = {}
-        self._wanted: dict[tuple[str, int], int] = {}
         self._eof: set[tuple[str, int]] = set()
         self._assigned: set[tuple[str, int]] = set()
-        self._on_revoke = None
-        self._consumer.subscribe(self.topics, on_assign=self._assign, on_revoke=self._revoke, on_lost=self._revoke)
 
-    def set_revoke_hook(self, hook) -> None:
-        """``hook(partitions)`` runs before partitions are taken away (snapshot and commit there)."""
-        self._on_revoke = hook
+    def _partitions(self, timeout: float = 30.0) -> list[tuple[str, int]]:
+        deadline = time.monotonic() + timeout
+        while True:
+            meta = self._consumer.list_topics(timeout=max(deadline - time.monotonic(), 1.0))
+            missing = [t for t in self.topics if t not in meta.topics or meta.topics[t].error is not None]
+            if not missing:
+                return [(t, p) for t in self.topics for p in sorted(meta.topics[t].partitions)]
+            if time.monotonic() > deadline:
+                raise RuntimeError(f"Kafka topic(s) {', '.join(missing)} not found at {self.bootstrap}")
+            time.sleep(0.5)
 
-    def _assign(self, consumer, partitions) -> None:
-        from confluent_kafka import OFFSET_INVALID
+    def seek(self, positions: dict) -> None:
+        """Assign every partition, at the snapshot's next offsets (else from the start)."""
+        from confluent_kafka import OFFSET_BEGINNING, TopicPartition
 
-        committed = {(p.topic, p.partition): p.offset for p in consumer.committed(partitions, timeout=10)}
-        for p in partitions:
-            key = (p.topic, p.partition)
-            start = self._wanted.get(key, committed.get(key, OFFSET_INVALID))
-            if start is not None and start >= 0:
-                p.offset = start
-                self._next[key] = start
-            self._assigned.add(key)
-            self._eof.discard(key)
-        consumer.assign(partitions)
-        log.info("assigned %s", ", ".join(f"{p.topic}[{p.partition}]@{p.offset}" for p in partitions))
+        wanted = {(t, int(p)): int(o) for t, parts in positions.get("kafka", {}).items() for p, o in parts.items()}
+        parts = []
+        for key in self._partitions():
+            start = wanted.get(key, OFFSET_BEGINNING)
+            parts.append(TopicPartition(key[0], key[1], start))
+            self._next[key] = max(start, 0)
+        self._consumer.assign(parts)
+        self._assigned = {(p.topic, p.partition) for p in parts}
+        self._eof.clear()
+        log.info("consuming %s", ", ".join(f"{p.topic}[{p.partition}]@{p.offset if p.offset >= 0 else 'start'}"
+                                             for p in parts))
 
-    def _revoke(self, consumer, partitions) -> None:
-        if self._on_revoke is not None:
-            self._on_revoke(partitions)
-        for p in partitions:
-            key = (p.topic, p.partition)
-            self._assigned.discard(key)
-            self._next.pop(key, None)
-            self._wanted.pop(key, None)
-        log.info("revoked %s", ", ".join(f"{p.topic}[{p.partition}]" for p in partitions))
+    def release(self) -> None:
+        """Stop consuming (another process takes over)."""
+        self._consumer.unassign()
+        self._assigned.clear()
+        self._next.clear()
+        self._eof.clear()
 
     def positions(self) -> dict:
         out: dict[str, dict[str, int]] = {}
         for (topic, part), off in sorted(self._next.items()):
             out.setdefault(topic, {})[str(part)] = off
         return {"kafka": out}
-
-    def seek(self, positions: dict) -> None:
-        for topic, parts in positions.get("kafka", {}).items():
-            for part, off in parts.items():
-                self._wanted[(topic, int(part))] = int(off)
-                self._next[(topic, int(part))] = int(off)
 
     def commit(self, positions: dict) -> None:
         from confluent_kafka import KafkaException, TopicPartition
@@ -319,7 +324,6 @@ class KafkaSource:
             TopicPartition(topic, int(part), int(off))
             for topic, parts in positions.get("kafka", {}).items()
             for part, off in parts.items()
-            if (topic, int(part)) in self._assigned
         ]
         if offsets:
             try:
@@ -331,6 +335,9 @@ class KafkaSource:
     def poll(self, timeout: float) -> SourceChunk | None:
         from confluent_kafka import KafkaError
 
+        if not self._assigned:
+            time.sleep(min(timeout, 0.05))
+            return None
         messages = self._consumer.consume(num_messages=self.batch_records, timeout=timeout)
         good = []
         for msg in messages:
@@ -354,10 +361,10 @@ class KafkaSource:
         return bool(self._assigned) and self._assigned <= self._eof
 
     def lag(self) -> dict[str, int]:
+        from confluent_kafka import TopicPartition
+
         out = {}
         for key in sorted(self._assigned):
-            from confluent_kafka import TopicPartition
-
             try:
                 _, high = self._consumer.get_watermark_offsets(TopicPartition(*key), cached=True)
             except Exception:  # noqa: BLE001 - a lag figure is best effort
@@ -365,6 +372,78 @@ class KafkaSource:
             if high is not None and high >= 0:
                 out[f"{key[0]}/{key[1]}"] = max(high - self._next.get(key, 0), 0)
         return out
+
+    def close(self) -> None:
+        try:
+            self._consumer.close()
+        except RuntimeError:
+            pass
+
+
+class OwnerLock:
+    """Which process of a consumer group owns the graph: the holder of one partition.
+
+    Every ranktide process of a group subscribes to a one-partition topic in
+    the group ``GROUP.owner`` (cooperative-sticky assignment, so a newcomer
+    does not steal it). The holder is the active owner; the others wait as
+    standbys. Kafka hands the partition over only after the previous holder's
+    revocation callback returns, and that callback writes a snapshot and
+    commits: the next owner starts exactly where the last one stopped. A
+    holder that dies loses the partition after ``session.timeout.ms``; its
+    successor starts from the newest snapshot.
+
+    Parameters
+    ----------
+    on_lost : callable
+        Called (inside :meth:`held`) before ownership goes away.
+    """
+
+    def __init__(self, bootstrap: str, group: str, topic: str, properties: dict[str, str], on_lost) -> None:
+        from confluent_kafka import Consumer
+
+        self.topic = topic
+        self._ensure_topic(bootstrap, properties)
+        self._on_lost = on_lost
+        self._held = False
+        self._consumer = Consumer({
+            "bootstrap.servers": bootstrap,
+            "group.id": f"{group}.owner",
+            "partition.assignment.strategy": "cooperative-sticky",
+            "session.timeout.ms": 10_000,
+            "heartbeat.interval.ms": 1_000,
+            "enable.auto.commit": False,
+            **properties,
+        }, logger=log)
+        self._consumer.subscribe([topic], on_assign=self._assign, on_revoke=self._revoke, on_lost=self._revoke)
+
+    def _ensure_topic(self, bootstrap: str, properties: dict[str, str]) -> None:
+        from confluent_kafka import KafkaError, KafkaException
+        from confluent_kafka.admin import AdminClient, NewTopic
+
+        admin = AdminClient({"bootstrap.servers": bootstrap, **properties})
+        futures = admin.create_topics([NewTopic(self.topic, num_partitions=1)], request_timeout=30)
+        try:
+            futures[self.topic].result(timeout=30)
+            log.info("created owner topic %s", self.topic)
+        except KafkaException as exc:
+            if exc.args[0].code() != KafkaError.TOPIC_ALREADY_EXISTS:
+                raise RuntimeError(f"cannot create owner topic {self.topic}: {exc.args[0].str()}") from exc
+
+    def _assign(self, consumer, partitions) -> None:
+        if partitions:
+            self._held = True
+            log.info("this process now owns the graph (holds %s)", self.topic)
+
+    def _revoke(self, consumer, partitions) -> None:
+        if partitions and self._held:
+            self._on_lost()
+            self._held = False
+            log.info("ownership handed over")
+
+    def held(self, timeout: float = 0.0) -> bool:
+        """Serve the group protocol (callbacks run here) and tell whether this process owns the graph."""
+        self._consumer.poll(timeout)
+        return self._held
 
     def close(self) -> None:
         try:

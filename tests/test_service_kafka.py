@@ -53,6 +53,20 @@ def _wait_snapshot_count(root: Path, count: int, timeout: float = 60) -> None:
     raise AssertionError(f"fewer than {count} snapshots under {root}")
 
 
+def _wait_for_records(root: Path, count: int, timeout: float = 120) -> None:
+    """Until the newest snapshot under ``root`` covers ``count`` records."""
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        try:
+            m = json.loads((newest_snapshot(root) / "manifest.json").read_text())
+        except (AssertionError, OSError, ValueError):
+            m = {"events_applied": 0, "events_rejected": 0}
+        if m["events_applied"] + m["events_rejected"] >= count:
+            return
+        time.sleep(0.2)
+    raise AssertionError(f"no snapshot under {root} covers {count} records")
+
+
 def test_two_kill9_and_a_broker_restart_count_every_message_once(kafka_broker, tmp_path: Path) -> None:
     rng = np.random.default_rng(21)
     topic = _topic(kafka_broker)
@@ -213,3 +227,44 @@ def test_record_then_replay_reproduces_the_service_snapshot(kafka_broker, tmp_pa
     # a replay of the recording from the live snapshot has nothing left to add
     again = replay_log(recording, tmp_path / "live", ReplayOptions(from_snapshot=live))
     assert again.counters.events_applied == live_manifest["events_applied"]
+
+
+def test_a_standby_in_the_same_group_takes_over_without_loss(kafka_broker, tmp_path: Path) -> None:
+    """Two processes, one group, one snapshot root: the owner hands over at a durable snapshot.
+
+    Events keep arriving while the owner is stopped, so the handover lands mid-stream.
+    """
+    import threading
+
+    rng = np.random.default_rng(27)
+    topic = _topic(kafka_broker)
+    root = tmp_path / "snaps"
+    stream = Stream()
+    stream.extend(rng, 20_000)
+    pieces = [stream.records[i:i + 1_000] for i in range(0, len(stream.records), 1_000)]
+
+    def produce_slowly() -> None:
+        for piece in pieces:
+            _produce(kafka_broker.bootstrap, topic, piece)
+            time.sleep(0.25)
+
+    producer = threading.Thread(target=produce_slowly)
+    producer.start()
+    owner = ranktide(*_args(kafka_broker, topic, root))
+    _wait_snapshot_count(root, 1)
+    standby = ranktide(*_args(kafka_broker, topic, root))
+    time.sleep(2.0)  # the standby joins the group and waits
+    owner.send_signal(signal.SIGTERM)
+    _, owner_err = owner.communicate(timeout=60)
+    assert owner.returncode == 0, owner_err.decode()[-2000:]
+    handed = json.loads((newest_snapshot(root) / "manifest.json").read_text())
+    assert handed["events_applied"] + handed["events_rejected"] < len(stream.records)  # mid-stream
+    producer.join()
+    _wait_for_records(root, len(stream.records))
+    standby.send_signal(signal.SIGTERM)
+    _, err = standby.communicate(timeout=60)
+    assert standby.returncode == 0, err.decode()[-3000:]
+    text = err.decode()
+    assert "now owns the graph" in text and f"resumed from snap-{handed['sequence']:08d}" in text
+    manifest = check_snapshot_against(stream, newest_snapshot(root), TOLERANCE)
+    assert manifest["events_applied"] + manifest["events_rejected"] == len(stream.records)
