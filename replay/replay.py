@@ -28,8 +28,9 @@ class ReplayOptions:
     personalizations : dict
         Profile name -> seeds file (one node per line, optionally
         ``node,weight``), applied before the log's first event.
-    micro_batch : int
-        Events applied between two settles.
+    micro_batch : int, optional
+        Settle after every this many events, as the live service does; by
+        default the engine is settled only before each snapshot.
     limits : Limits
         Input caps.
     progress : bool
@@ -50,7 +51,7 @@ class ReplayOptions:
     damping: float = 0.85
     tolerance: float = 1e-6
     personalizations: dict[str, Path] = field(default_factory=dict)
-    micro_batch: int = 50_000
+    micro_batch: int | None = None
     limits: Limits = field(default_factory=Limits)
     progress: bool = False
     from_snapshot: Path | None = None
@@ -148,19 +149,20 @@ class RejectsWriter:
             self._fh = None
 
 
-def apply_events(ranker: Ranker, batch: EventBatch, counters: Counters, micro_batch: int) -> None:
-    """Apply valid events in micro-batches, settling after each."""
-    for start in range(0, len(batch), micro_batch):
-        part = batch.slice(start, start + micro_batch)
+def apply_events(ranker: Ranker, batch: EventBatch, counters: Counters, micro_batch: int | None) -> None:
+    """Apply valid events; with ``micro_batch``, settle after every that many events.
+
+    Without it nothing is settled here: a replay publishes only snapshots, and
+    :func:`~stream.snapshots.write_snapshot` settles before writing, so one
+    settle per snapshot does the work of many.
+    """
+    step = micro_batch or max(len(batch), 1)
+    for start in range(0, len(batch), step):
+        part = batch.slice(start, start + step)
         counters.events_noop += ranker.apply(part)
         counters.events_applied += len(part)
-        ranker.settle()
-
-
-def apply_chunk(ranker: Ranker, chunk: LogChunk, counters: Counters, micro_batch: int) -> None:
-    """Apply a whole chunk: its valid events, and count its rejects."""
-    apply_events(ranker, chunk.parsed.batch, counters, micro_batch)
-    counters.events_rejected += len(chunk.parsed.reasons)
+        if micro_batch:
+            ranker.settle()
 
 
 def seed_personalizations(ranker: Ranker, personalizations: dict[str, Path]) -> None:

@@ -215,21 +215,28 @@ class Engine:
         """Push every profile until its certified bound is at most the tolerance."""
         tol = self.tolerance if tolerance is None else float(tolerance)
         total = SettleStats()
+        for k in range(len(self.profiles)):
+            total.add(self._settle_profile(k, tol))
+            if self.S[k, : self.n_nodes].any() and self.P[k, : self.n_nodes].sum() <= 0.0:
+                # the running residual lost the teleport mass to cancellation (a seed removed and
+                # re-added with weights far apart): rebuild it exactly and settle once more
+                self._recompute_profile_residual(k)
+                total.add(self._settle_profile(k, tol))
+        return total
+
+    def _settle_profile(self, k: int, tol: float) -> SettleStats:
         g = self.graph.arrays
         stats = np.zeros(5, dtype=np.int64)
-        for k in range(len(self.profiles)):
-            stats[:] = 0
-            kernels.settle_profile(
-                k, tol, self.n_nodes, self.n_edges,
-                g.head, g.out_weight, g.out_degree, g.src, g.dst, g.weight, g.next,
-                int(g.counters[0]),
-                self.P, self.R, self.teleport, self.damping,
-                self._active, self._n_active, self._in_active,
-                self._queue, self._in_queue, self._tmp, SWEEP_SHARE, THETA_STEP, stats,
-            )
-            kernels.compact_active(k, self.R, self._active, self._n_active, self._in_active)
-            total.add(SettleStats(*(int(x) for x in stats)))
-        return total
+        kernels.settle_profile(
+            k, tol, self.n_nodes, self.n_edges,
+            g.head, g.out_weight, g.out_degree, g.src, g.dst, g.weight, g.next,
+            int(g.counters[0]),
+            self.P, self.R, self.teleport, self.damping,
+            self._active, self._n_active, self._in_active,
+            self._queue, self._in_queue, self._tmp, SWEEP_SHARE, THETA_STEP, stats,
+        )
+        kernels.compact_active(k, self.R, self._active, self._n_active, self._in_active)
+        return SettleStats(*(int(x) for x in stats))
 
     # ------------------------------------------------------------ exactness
     def recompute_residual(self) -> float:
@@ -238,21 +245,24 @@ class Engine:
         Removes the floating-point drift of incremental updates. Returns the
         largest drift found, relative to ``max(||s||_1, 1)`` of its profile.
         """
+        n = self.n_nodes
+        self.graph.arrays.out_weight[:n] = self.graph.exact_out_weight()
+        return max((self._recompute_profile_residual(k) for k in range(len(self.profiles))), default=0.0)
+
+    def _recompute_profile_residual(self, k: int) -> float:
+        """Exact residual of profile ``k`` from ``p``; returns the drift found (relative)."""
         g = self.graph.arrays
         n = self.n_nodes
-        g.out_weight[:n] = self.graph.exact_out_weight()
-        worst = 0.0
         fresh = np.zeros(n)
-        for k in range(len(self.profiles)):
-            kernels.exact_residual(
-                k, n, self.P, self.S, g.src, g.dst, g.weight, int(g.counters[0]),
-                g.out_weight, self.teleport, self.damping, fresh,
-            )
-            scale = max(float(np.abs(self.S[k, :n]).sum()), 1.0)
-            worst = max(worst, float(np.abs(fresh - self.R[k, :n]).max(initial=0.0)) / scale)
-            self.R[k, :n] = fresh
-            self._reset_active(k)
-        return worst
+        kernels.exact_residual(
+            k, n, self.P, self.S, g.src, g.dst, g.weight, int(g.counters[0]),
+            g.out_weight, self.teleport, self.damping, fresh,
+        )
+        scale = max(float(np.abs(self.S[k, :n]).sum()), 1.0)
+        drift = float(np.abs(fresh - self.R[k, :n]).max(initial=0.0)) / scale
+        self.R[k, :n] = fresh
+        self._reset_active(k)
+        return drift
 
     def restore(
         self,
@@ -327,7 +337,7 @@ class Engine:
         """Certified bound on the normalised L1 error of ``profile``'s scores."""
         k = self.profile_index(profile)
         n = self.n_nodes
-        return certified_bound(self.P[k, :n], self.R[k, :n])
+        return certified_bound(self.P[k, :n], self.R[k, :n], empty=not self.S[k, :n].any())
 
     def scores(self, profile: str = GLOBAL) -> np.ndarray:
         """Normalised scores of ``profile`` (a copy; sums to 1, or all zero when empty)."""

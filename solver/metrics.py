@@ -22,24 +22,32 @@ import math
 import numpy as np
 
 
-def certified_bound(p: np.ndarray, r: np.ndarray) -> float:
+def certified_bound(p: np.ndarray, r: np.ndarray, empty: bool = False) -> float:
     """Upper bound on ``||p/sum(p) - x/sum(x)||_1`` from the residual.
 
     Parameters
     ----------
     p, r : ndarray
         Estimate and residual of one profile (same length).
+    empty : bool
+        The profile's teleport vector is zero (no seeds): its scores are all
+        zero by definition and the bound is 0.
 
     Returns
     -------
     float
         The bound; ``inf`` when ``sum(p) <= ||r||_1`` (nothing can be certified
-        yet) and 0 for an exact solve or an empty profile.
+        yet, including ``p = 0`` for a profile with seeds) and 0 for an exact
+        solve or an empty profile.
     """
+    if empty:
+        return 0.0
     rho = float(np.abs(r).sum())
+    s_p = float(p.sum())
+    if s_p <= 0.0:
+        return math.inf
     if rho == 0.0:
         return 0.0
-    s_p = float(p.sum())
     if s_p <= rho:
         return math.inf
     return rho * (1.0 + float(np.abs(p).sum()) / s_p) / (s_p - rho)

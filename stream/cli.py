@@ -228,7 +228,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--personalization", action="append", type=_personalization, metavar="NAME=SEEDS_FILE",
                    help="add a personalized profile seeded from a file (one node per line, optionally "
                         "node,weight); may be repeated")
-    p.add_argument("--micro-batch", type=int, default=50_000, help="events applied between settles (default 50000)")
+    p.add_argument("--micro-batch", type=int, default=None, metavar="N",
+                   help="settle after every N events, as the service does (default: settle only before "
+                        "each snapshot, which is faster and gives the same snapshots within the tolerance)")
     p.add_argument("--from", dest="from_snapshot", type=Path, metavar="SNAPSHOT",
                    help="start from this snapshot folder instead of an empty graph; the log is read from the "
                         "snapshot's position in it (a recording skips the messages the snapshot covers)")

@@ -277,8 +277,10 @@ def load_snapshot(path: Path, check: bool = True) -> Snapshot:
         raise SnapshotError(f"{path}: unreadable Parquet file: {exc}") from exc
     ranker = Ranker(damping=manifest["damping"], tolerance=manifest["tolerance"])
     glob = scores.filter(pa.compute.equal(scores["profile"], GLOBAL))
-    ranker.ids = NodeIds(glob["node"].to_pylist())
+    ranker.ids = NodeIds(glob["node"])
     n = len(ranker.ids)
+    if n != glob.num_rows:
+        raise SnapshotError(f"{path}: scores.parquet names a node twice in the global profile")
     estimates, teleports = {}, {}
     for name, info in manifest["profiles"].items():
         part = scores.filter(pa.compute.equal(scores["profile"], name))
