@@ -102,7 +102,7 @@ def _fast_parse(records: list[bytes], limits: Limits) -> pa.Table | None:
     # one line per record, none blank: otherwise Arrow's rows would not line up with the records
     if blob.count(b"\n") != len(records) - 1 or b"\n\n" in blob or b"\r" in blob:
         return None
-    if any(len(r) > limits.max_record_bytes for r in records) or not records[0].strip():
+    if max(map(len, records)) > limits.max_record_bytes or not records[0].strip():
         return None
     try:
         table = pj.read_json(io.BytesIO(blob + b"\n"), parse_options=_PARSE_OPTIONS)

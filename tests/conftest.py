@@ -25,6 +25,15 @@ def pytest_collection_modifyitems(config: pytest.Config, items: list[pytest.Item
             item.add_marker(skip)
 
 
+@pytest.fixture(autouse=True)
+def _reap_children() -> Iterator[None]:
+    """No ``ranktide`` child process outlives the test that started it (even a failed one)."""
+    yield
+    from stream_helpers import reap_children
+
+    reap_children()
+
+
 @pytest.fixture(scope="session")
 def kafka_broker() -> Iterator[LocalKafka]:
     """Yield one started local Kafka broker shared by the whole session.

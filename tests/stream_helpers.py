@@ -87,8 +87,23 @@ def check_snapshot_against(stream: Stream, snap: Path, tolerance: float) -> dict
     return manifest
 
 
+#: Children started by :func:`ranktide`; ``conftest.py`` kills those still running after each test.
+CHILDREN: list[subprocess.Popen] = []
+
+
 def ranktide(*args: str, env: dict | None = None, **kwargs) -> subprocess.Popen:
     """Start the ``ranktide`` command line as a child process."""
     full_env = {**os.environ, **(env or {})}
-    return subprocess.Popen([sys.executable, "-m", "stream.cli", *args], env=full_env,
+    proc = subprocess.Popen([sys.executable, "-m", "stream.cli", *args], env=full_env,
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, **kwargs)
+    CHILDREN.append(proc)
+    return proc
+
+
+def reap_children() -> None:
+    """Kill the children a failed test left running."""
+    while CHILDREN:
+        proc = CHILDREN.pop()
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait(10)
