@@ -251,8 +251,8 @@ def _recorded_chunk(table: pa.Table, first_row: int, limits: Limits) -> LogChunk
     values = table["value"].to_pylist()
     kinds = table["content_type"].to_pylist() if "content_type" in table.column_names else [None] * len(values)
     cols = {name: table[name].to_pylist() for name in ("topic", "partition", "offset") if name in table.column_names}
-    places = [{name: cols[name][i] for name in cols} for i in range(len(values))]
-    decoded = decode_values(values, [k == ARROW_CONTENT_TYPE for k in kinds], places, limits)
+    decoded = decode_values(values, [k == ARROW_CONTENT_TYPE for k in kinds],
+                            lambda i: {name: cols[name][i] for name in cols}, limits)
     rows = first_row + np.arange(table.num_rows, dtype=np.int64)
     end = first_row + table.num_rows
     kafka = None
