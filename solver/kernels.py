@@ -139,16 +139,25 @@ def _unlink(head, src, nxt, prv, counters, e):
 
 
 @njit(cache=True)
-def _mark(k, v, active, n_active, in_active):
+def _mark(k, v, R, active, n_active, in_active, parked):
+    """Put ``v`` on profile ``k``'s active list; call it *before* changing ``R[k, v]``.
+
+    A node taken off the list with a small residual is *parked*: its residual
+    stays counted in ``parked[k]`` until it comes back here.
+    """
     if not in_active[k, v]:
+        if R[k, v] != 0.0:
+            parked[k] -= abs(R[k, v])
         in_active[k, v] = True
         active[k, n_active[k]] = v
         n_active[k] += 1
 
 
 @njit(cache=True)
-def _repair_rescale(P, R, k, u, v, w_old, w_new, W_old, W_new, a, d, active, n_active, in_active):
+def _repair_rescale(P, R, k, u, v, w_old, w_new, W_old, W_new, a, d, active, n_active, in_active, parked):
     """O(1) repair of [2]: rescale p(u) so flows on u's other edges stay put."""
+    _mark(k, u, R, active, n_active, in_active, parked)
+    _mark(k, v, R, active, n_active, in_active, parked)
     p_u = P[k, u]
     if W_old == 0.0:
         # u was dangling: its row becomes e_v, p(u) is unchanged
@@ -165,12 +174,11 @@ def _repair_rescale(P, R, k, u, v, w_old, w_new, W_old, W_new, a, d, active, n_a
             R[k, v] += (d / a) * p_new * delta / W_new
         else:
             R[k, v] += (d / a) * p_u * delta / W_old
-    _mark(k, u, active, n_active, in_active)
-    _mark(k, v, active, n_active, in_active)
 
 
 @njit(cache=True)
-def _repair_neighbours(P, R, k, u, v, w_old, W_old, W_new, head, dst, weight, nxt, a, d, active, n_active, in_active):
+def _repair_neighbours(P, R, k, u, v, w_old, W_old, W_new, head, dst, weight, nxt, a, d,
+                       active, n_active, in_active, parked):
     """O(deg u) repair: keep p(u), correct r on each out-neighbour of u.
 
     The correction is ``(d/a) p(u) (P'(u, y) - P(u, y))`` for every ``y``; it sums
@@ -189,20 +197,30 @@ def _repair_neighbours(P, R, k, u, v, w_old, W_old, W_new, head, dst, weight, nx
             before = (w_old if y == v else w) / W_old
         if y == v:
             seen_v = True
+        _mark(k, y, R, active, n_active, in_active, parked)
         R[k, y] += c * (w / W_new - before)
-        _mark(k, y, active, n_active, in_active)
         e = nxt[e]
     if not seen_v and W_old > 0.0:
         # the edge u -> v was removed: its old flow leaves v
+        _mark(k, v, R, active, n_active, in_active, parked)
         R[k, v] -= c * w_old / W_old
-        _mark(k, v, active, n_active, in_active)
+
+
+@njit(cache=True)
+def _out_weight_sum(head, e_w, e_next, u):
+    total = 0.0
+    e = head[u]
+    while e >= 0:
+        total += e_w[e]
+        e = e_next[e]
+    return total
 
 
 @njit(cache=True)
 def apply_events(
     op, src, dst, wt,
     head, out_weight, out_degree, e_src, e_dst, e_w, e_next, e_prev, table, counters,
-    P, R, S, a, d, active, n_active, in_active, local_max_degree,
+    P, R, S, a, d, active, n_active, in_active, parked, local_max_degree,
 ):
     """Apply one batch of events in order and repair every profile.
 
@@ -235,8 +253,8 @@ def apply_events(
                 noop += 1
                 continue
             S[v, u] = wt[i]
+            _mark(v, u, R, active, n_active, in_active, parked)
             R[v, u] += change
-            _mark(v, u, active, n_active, in_active)
             continue
         cell = find_cell(table, shift, e_src, e_dst, u, v)
         if kind == OP_INSERT:
@@ -270,15 +288,20 @@ def apply_events(
         W_new = W_old + (w_new - w_old)
         if out_degree[u] == 0 or W_new < 0.0:
             W_new = 0.0  # exact zero for a dangling node, whatever the rounding
+        elif W_old > 2.0 * W_new:
+            # most of the weight went: W_old - w_old would cancel, so sum what is left
+            W_new = _out_weight_sum(head, e_w, e_next, u)
         out_weight[u] = W_new
-        local = out_degree[u] <= local_max_degree
+        # the O(1) rescaling multiplies p(u) by W_new / W_old: only for a moderate ratio,
+        # else rounding grows by that factor
+        local = out_degree[u] <= local_max_degree or not (0.5 * W_old <= W_new <= 2.0 * W_old)
         for k in range(n_prof):
             if local:
                 _repair_neighbours(P, R, k, u, v, w_old, W_old, W_new, head, e_dst, e_w, e_next,
-                                   a, d, active, n_active, in_active)
+                                   a, d, active, n_active, in_active, parked)
             else:
                 _repair_rescale(P, R, k, u, v, w_old, w_new, W_old, W_new, a, d,
-                                active, n_active, in_active)
+                                active, n_active, in_active, parked)
     return noop
 
 
@@ -326,7 +349,7 @@ def _sweep(k, P, R, tmp, n, e_src, e_dst, e_w, top, out_weight, a, d):
 def settle_profile(
     k, tol, n, m,
     head, out_weight, out_degree, e_src, e_dst, e_w, e_next, top,
-    P, R, a, d, active, n_active, in_active, queue, in_queue, tmp, sweep_share, theta_step, stats,
+    P, R, a, d, active, n_active, in_active, parked, queue, in_queue, tmp, sweep_share, theta_step, stats,
 ):
     """Push profile ``k`` until its certified bound is at most ``tol``.
 
@@ -342,7 +365,7 @@ def settle_profile(
     ``stats`` accumulates: [0] pushes, [1] edges touched by pushes,
     [2] sweeps, [3] edges touched by sweeps, [4] local phases.
     """
-    rho = 0.0
+    rho = parked[k]
     for i in range(n_active[k]):
         rho += abs(R[k, active[k, i]])
     s_p = 0.0
@@ -360,12 +383,17 @@ def settle_profile(
     theta *= 0.5
     sweeping = False
     rounds = 0
+    stalled = 0
     while not _done(rho, s_p, abs_p, tol):
         rounds += 1
         if sweeping or rounds > 10_000:
+            before = rho
             rho, s_p, abs_p = _sweep(k, P, R, tmp, n, e_src, e_dst, e_w, top, out_weight, a, d)
             stats[2] += 1
             stats[3] += m
+            stalled = stalled + 1 if rho >= before else 0
+            if stalled >= 50:
+                break  # rounding floor reached: the bound reported is what it is
             continue
         # collect the nodes due in this phase
         qh = 0
@@ -378,14 +406,14 @@ def settle_profile(
                 queue[qt] = u
                 qt += 1
                 frontier += out_degree[u]
+        pending = qt
         if qt == cap:
-            qt = 0
+            qt = 0  # every node is due: the ring buffer is full and its tail wraps
         if frontier > sweep_share * m:
-            for j in range(qt):
+            for j in range(pending):
                 in_queue[queue[j]] = False
             sweeping = True
             continue
-        pending = qt
         while pending > 0 and not _done(rho, s_p, abs_p, tol):
             u = queue[qh]
             qh += 1
@@ -411,11 +439,11 @@ def settle_profile(
             e = head[u]
             while e >= 0:
                 v = e_dst[e]
+                _mark(k, v, R, active, n_active, in_active, parked)
                 before = R[k, v]
                 after = before + scale * e_w[e]
                 R[k, v] = after
                 rho += abs(after) - abs(before)
-                _mark(k, v, active, n_active, in_active)
                 if not in_queue[v] and abs(after) > theta * max(out_degree[v], 1):
                     in_queue[v] = True
                     queue[qt] = v
@@ -436,16 +464,18 @@ def settle_profile(
         if theta < 1e-300:
             sweeping = True
         # re-sum to shed the rounding of the running totals
-        rho = 0.0
+        rho = parked[k]
         for i in range(n_active[k]):
             rho += abs(R[k, active[k, i]])
     if sweeping:
-        # after sweeps every node may carry residual
+        # after sweeps every node may carry residual: all are listed, none parked
         n_active[k] = 0
+        parked[k] = 0.0
         for u in range(n):
-            in_active[k, u] = False
-            if R[k, u] != 0.0:
-                _mark(k, u, active, n_active, in_active)
+            in_active[k, u] = R[k, u] != 0.0
+            if in_active[k, u]:
+                active[k, n_active[k]] = u
+                n_active[k] += 1
     return rho, s_p, abs_p
 
 
@@ -461,14 +491,43 @@ def exact_residual(k, n, P, S, e_src, e_dst, e_w, top, out_weight, a, d, out):
 
 
 @njit(cache=True)
-def compact_active(k, R, active, n_active, in_active):
-    """Drop nodes whose residual is exactly zero from profile ``k``'s active list."""
+def park_threshold(k, R, active, n_active, budget):
+    """Largest power of two ``t`` such that the residuals ``0 < |r| < t`` sum to at most ``budget``.
+
+    One pass with a histogram of binary exponents, instead of a sort.
+    """
+    mass = np.zeros(2100)
+    for i in range(n_active[k]):
+        r = abs(R[k, active[k, i]])
+        if r > 0.0:
+            mass[int(np.log2(r)) + 1074] += r
+    total = 0.0
+    for b in range(mass.shape[0]):
+        if total + mass[b] > budget:
+            return 2.0 ** (b - 1074)
+        total += mass[b]
+    return np.inf
+
+
+@njit(cache=True)
+def compact_active(k, R, active, n_active, in_active, parked, park_budget, park_each):
+    """Shorten profile ``k``'s active list.
+
+    Nodes with a zero residual leave it; nodes with ``|r| <= park_each`` are
+    parked (their residual moves into ``parked[k]``) while the parked total
+    stays within ``park_budget``. Scans and pushes then skip them until an
+    update touches them again (see :func:`_mark`).
+    """
     kept = 0
     for i in range(n_active[k]):
         u = active[k, i]
-        if R[k, u] != 0.0:
+        r = abs(R[k, u])
+        if r == 0.0:
+            in_active[k, u] = False
+        elif r <= park_each and parked[k] + r <= park_budget:
+            in_active[k, u] = False
+            parked[k] += r
+        else:
             active[k, kept] = u
             kept += 1
-        else:
-            in_active[k, u] = False
     n_active[k] = kept

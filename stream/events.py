@@ -27,6 +27,7 @@ import pyarrow.compute as pc
 import pyarrow.json as pj
 
 from solver import GLOBAL, OP_DELETE, OP_INSERT, OP_SEED, EventBatch
+from solver.engine import MAX_WEIGHT, MIN_WEIGHT
 
 OPS = {"insert": OP_INSERT, "delete": OP_DELETE, "seed": OP_SEED}
 FIELDS = ("op", "src", "dst", "weight", "ts", "profile", "node")
@@ -249,8 +250,11 @@ def validate_table(table: pa.Table, limits: Limits = Limits(), pre_reasons: list
     with np.errstate(invalid="ignore"):
         bad_edge_w = (op == OP_INSERT) & ~(np.isfinite(weight) & (weight > 0))
         bad_seed_w = is_seed & ~(np.isfinite(weight) & (weight >= 0))
+        in_range = (weight >= MIN_WEIGHT) & (weight <= MAX_WEIGHT)
     reject(bad_edge_w, lambda i: f"weight must be a finite number > 0, got {float(weight[i])!r}")
     reject(bad_seed_w, lambda i: f"seed weight must be a finite number >= 0, got {float(weight[i])!r}")
+    reject(((op == OP_INSERT) | (is_seed & (weight != 0))) & ~in_range,
+           lambda i: f"weight {float(weight[i])!r} is outside [{MIN_WEIGHT:g}, {MAX_WEIGHT:g}]")
     profile_is_global = pc.fill_null(pc.equal(profile, GLOBAL), False).to_numpy(zero_copy_only=False)
     reject(is_seed & profile_is_global, "the global profile teleports uniformly; seed a named profile")
 
