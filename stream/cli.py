@@ -6,6 +6,7 @@ import argparse
 import json
 import logging
 import math
+import os
 import sys
 from pathlib import Path
 
@@ -128,7 +129,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
     if args.personalization:
         overrides["personalizations"] = {k: str(v) for k, v in args.personalization}
     try:
-        if not (args.source or args.config or "RANKTIDE_SOURCE" in __import__("os").environ):
+        if not (args.source or args.config or "RANKTIDE_SOURCE" in os.environ):
             overrides.update(_embedded_default(args))
         cfg = load_config(args.config, overrides=overrides)
     except ConfigError as exc:
