@@ -23,7 +23,7 @@ import pyarrow.compute as pc
 import pyarrow.csv as pcsv
 import pyarrow.parquet as pq
 
-from stream.events import FIELDS, Limits, Parsed, parse_json_records, validate_table
+from stream.events import FIELDS, Limits, Parsed, ts_millis, parse_json_records, validate_table
 
 CHUNK_BYTES = 8 << 20
 
@@ -224,13 +224,25 @@ def _decode_text_columns(table: pa.Table) -> tuple[pa.Table, list | None]:
         try:
             converted = pc.cast(col, typ)
         except pa.ArrowInvalid:
-            values, bad = _convert_cells(col.to_pylist(), float if name == "weight" else int)
+            values, bad = _convert_cells(col.to_pylist(), float if name == "weight" else _ts_cell)
             converted = pa.array(values, typ)
             reasons = reasons or [None] * table.num_rows
             for i in bad:
-                reasons[i] = reasons[i] or f"{name} {col[i].as_py()[:40]!r} is not a number"
+                what = "a number" if name == "weight" else "milliseconds or ISO-8601 text"
+                reasons[i] = reasons[i] or f"{name} {col[i].as_py()[:40]!r} is not {what}"
         table = table.set_column(table.column_names.index(name), name, converted)
     return table, reasons
+
+
+def _ts_cell(text: str) -> int:
+    """Milliseconds from a CSV cell: an integer, or ISO-8601 text."""
+    try:
+        return int(text)
+    except ValueError:
+        millis, reason = ts_millis(text)
+        if reason:
+            raise ValueError(reason) from None
+        return millis
 
 
 def _convert_cells(cells: list, kind) -> tuple[list, list[int]]:
@@ -272,16 +284,18 @@ def _read_parquet(path: Path, limits: Limits, start_row: int, batch_rows: int) -
     if not recorded and "op" not in columns:
         raise LogError(f"{path}: a Parquet log needs an 'op' column, or the 'value' column of a recording "
                        f"(has {pf.schema_arrow.names})")
-    row = 0
-    for rb in pf.iter_batches(batch_size=batch_rows, columns=columns):
-        table = pa.Table.from_batches([rb])
-        if row + table.num_rows <= start_row:
-            row += table.num_rows
-            continue
-        if row < start_row:
-            table = table.slice(start_row - row)
-            row = start_row
+    for row, table in _from_row(pf.iter_batches(batch_size=batch_rows, columns=columns), start_row):
         yield _recorded_chunk(table, row, limits) if recorded else _table_chunk(table, row, limits, first_line=row)
+
+
+def _from_row(batches, start_row: int) -> Iterator[tuple[int, pa.Table]]:
+    """(first row number, table) of each record batch, skipping rows before ``start_row``."""
+    row = 0
+    for rb in batches:
+        table = pa.Table.from_batches([rb])
+        if row + table.num_rows > start_row:
+            skip = max(start_row - row, 0)
+            yield row + skip, table.slice(skip)
         row += table.num_rows
 
 
@@ -292,17 +306,8 @@ def _read_csv(path: Path, limits: Limits, start_row: int, batch_rows: int) -> It
         read_options=pcsv.ReadOptions(block_size=1 << 22),
         convert_options=pcsv.ConvertOptions(column_types=types, strings_can_be_null=True),
     )
-    row = 0
-    for rb in reader:
-        table = pa.Table.from_batches([rb])
-        if "op" not in table.column_names:
-            raise LogError(f"{path}: a CSV log needs the header op,src,dst,weight,ts (has {table.column_names})")
-        if row + table.num_rows <= start_row:
-            row += table.num_rows
-            continue
-        if row < start_row:
-            table = table.slice(start_row - row)
-            row = start_row
+    if "op" not in reader.schema.names:
+        raise LogError(f"{path}: a CSV log needs the header op,src,dst,weight,ts (has {reader.schema.names})")
+    for row, table in _from_row(reader, start_row):
         # line numbers count the header line
         yield _table_chunk(table, row, limits, first_line=row + 2)
-        row += table.num_rows

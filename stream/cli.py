@@ -24,9 +24,9 @@ def _until(text: str) -> int | float:
     """A line/row number (digits) or an ISO-8601 time (returned in ms since the epoch)."""
     if text.isdigit():
         return int(text)
-    from stream.events import _ts_millis
+    from stream.events import ts_millis
 
-    millis, reason = _ts_millis(text)
+    millis, reason = ts_millis(text)
     if reason:
         raise argparse.ArgumentTypeError(f"expected a line number or ISO-8601 time, got {text!r}")
     return float(millis)

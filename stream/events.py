@@ -154,7 +154,7 @@ def _parse_one(raw: bytes, limits: Limits) -> tuple[dict | None, str | None]:
             return None, f"weight must be a number, got {type(w).__name__}"
         fields["weight"] = float(w) if abs(w) < 1e308 or isinstance(w, float) else math.inf
     if obj.get("ts") is not None:
-        ts, reason = _ts_millis(obj["ts"])
+        ts, reason = ts_millis(obj["ts"])
         if reason:
             return None, reason
         fields["ts"] = ts
@@ -174,7 +174,7 @@ def _id_text(value) -> str | None:
     return None
 
 
-def _ts_millis(value) -> tuple[int | None, str | None]:
+def ts_millis(value) -> tuple[int | None, str | None]:
     """Milliseconds since the epoch from a number or ISO-8601 text."""
     if isinstance(value, bool):
         return None, "ts must be milliseconds since the epoch or ISO-8601 text"

@@ -188,3 +188,21 @@ def test_the_demo_runs_end_to_end_and_leaves_its_files(tmp_path: Path) -> None:
     assert len(audits) >= 3 and all(a["ok"] for a in audits)
     assert {"global", "platform-team"} <= set(audits[-1]["profiles"])
     assert str(out / "top-movers.png") in proc.stdout
+
+
+def test_a_csv_log_with_iso_times_and_bad_cells(tmp_path: Path) -> None:
+    """CSV with the header op,src,dst,weight,ts: bad cells are rejects with their line, the rest applies."""
+    log = tmp_path / "events.csv"
+    log.write_text("op,src,dst,weight,ts\n"
+                   "insert,a,b,1,\n"
+                   "insert,b,c,heavy,\n"
+                   "insert,b,a,2,2024-01-01T00:00:00Z\n"
+                   "delete,a,b,,\n"
+                   "insert,c,a,1,yesterday\n")
+    summary = replay_log(log, tmp_path / "snaps")
+    assert (summary.counters.events_applied, summary.counters.events_rejected) == (3, 2)
+    rejects = [json.loads(line) for line in (tmp_path / "snaps" / "rejects.jsonl").read_text().splitlines()]
+    assert [r["line"] for r in rejects] == [3, 6]
+    assert "heavy" in rejects[0]["reason"] and "ISO-8601" in rejects[1]["reason"]
+    stream = Stream(edges={("b", "a"): 2.0}, nodes={"a", "b"})  # c appears only in rejected lines
+    check_snapshot_against(stream, summary.snapshot, TOLERANCE)
