@@ -88,7 +88,7 @@ def write_log(path: Path, seed: int = 20261201) -> GeneratedLog:
     numeric = list(range(100, 160))  # ids also written as JSON numbers
     pool = names + [str(i) for i in numeric]
     skew = 1.0 / np.arange(1, len(pool) + 1) ** 1.1
-    skew /= skew.sum()
+    pairs = iter(rng.choice(len(pool), size=(LINES, 2), p=skew / skew.sum()).tolist())
     out = GeneratedLog(path)
     model = out.model
     known: list[tuple[str, str]] = []
@@ -126,7 +126,7 @@ def write_log(path: Path, seed: int = 20261201) -> GeneratedLog:
                 line = valid({"op": "insert", "src": node_json(u), "dst": node_json(v), "weight": w},
                              model.insert(u, v, w))
         else:
-            u, v = (str(x) for x in rng.choice(pool, size=2, p=skew))
+            u, v = (pool[i] for i in next(pairs))
             if roll < 0.27:  # deletes of (mostly) missing edges
                 line = valid({"op": "delete", "src": node_json(u), "dst": node_json(v)}, model.delete(u, v))
             else:
