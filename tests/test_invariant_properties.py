@@ -22,8 +22,8 @@ After every sequence, and again after a final settle:
   max(||s||_1, 1) (design notes: ~1e-12);
 * the certified bound is never below the true normalised L1 error, and after
   ``settle(tol)`` it is at most ``tol``.
-Edge weights span 0.01 to 100 and seed weights 1e-3 to 10: the engine
-defects found with wider ranges are pinned in ``test_known_engine_bugs.py``.
+Edge weights span 1e-3 to 1e3 and seed weights 1e-3 to 10; the defects
+found with wider ranges are pinned in ``test_known_engine_bugs.py``.
 """
 
 from __future__ import annotations
@@ -55,10 +55,10 @@ ROUNDING = 1e-12
 
 Event = tuple[str, str, str, float]
 
-# weight ratios up to 1e4; far larger ratios break the engine's precision
-# (see test_known_engine_bugs.py)
-weights = st.one_of(st.sampled_from([0.5, 1.0, 2.0, 3.25]), st.floats(0.01, 100.0))
-# seed weights stay far above underflow: see test_settle_returns_for_a_tiny_seed_weight
+# edge weights log-uniform over six decades, plus exact repeats (re-deliveries)
+weights = st.one_of(st.sampled_from([0.5, 1.0, 2.0, 3.25]), st.floats(-3.0, 3.0).map(lambda e: 10.0**e))
+# seed weights within four decades: a seed raised by many more decades and set
+# back before a settle is an open defect (test_known_engine_bugs.py)
 seed_weights = st.one_of(st.just(0.0), st.sampled_from([1.0, 2.5]), st.floats(1e-3, 10.0))
 tolerances = st.one_of(st.integers(-11, -1).map(lambda e: 10.0**e), st.floats(1e-9, 1e-1))
 
