@@ -158,3 +158,48 @@ def test_configuration_file_environment_and_secrets(tmp_path: Path, as_env: bool
     assert "hunter2" not in shown and "s3cret" not in shown
     if as_env:
         assert cfg.kafka["ssl.key.password"] == "s3cret"
+
+
+def _free_port() -> int:
+    import socket
+
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def test_metrics_endpoint_and_json_logs(tmp_path: Path) -> None:
+    """Prometheus text format (exposition format 0.0.4) on 127.0.0.1, structured logs on request."""
+    import urllib.request
+
+    stream = Stream()
+    stream.extend(np.random.default_rng(6), 3000)
+    log, root = tmp_path / "events.jsonl", tmp_path / "snaps"
+    _append(log, stream.records)
+    port = _free_port()
+    args = [a for a in _run_args(log, root) if a not in ("--metrics", "")]
+    proc = ranktide(*args, "--metrics", f"127.0.0.1:{port}", "--log-json")
+    _wait_for(lambda: _has_snapshot(root), what="a first snapshot")
+    def scrape() -> tuple[str, dict[str, float]]:
+        with urllib.request.urlopen(f"http://127.0.0.1:{port}/metrics", timeout=5) as resp:
+            assert resp.headers["Content-Type"].startswith("text/plain")
+            text = resp.read().decode()
+        return text, {ln.split()[0]: float(ln.split()[1]) for ln in text.splitlines() if ln and ln[0] != "#"}
+
+    def counted(values: dict[str, float]) -> float:
+        return values.get("ranktide_events_applied_total", 0) + values.get("ranktide_events_rejected_total", 0)
+
+    body, metrics = scrape()
+    deadline = time.monotonic() + 30
+    while counted(metrics) < len(stream.records) and time.monotonic() < deadline:
+        time.sleep(0.1)
+        body, metrics = scrape()
+    proc.send_signal(signal.SIGTERM)
+    _, err = proc.communicate(timeout=30)
+    assert counted(metrics) == len(stream.records)
+    assert metrics['ranktide_certified_bound{profile="global"}'] <= TOLERANCE
+    assert metrics["ranktide_snapshots_total"] >= 1
+    assert "# TYPE ranktide_consumer_lag gauge" in body
+    entries = [json.loads(line) for line in err.decode().splitlines() if line.startswith("{")]
+    assert entries and all({"time", "level", "logger", "message"} <= set(e) for e in entries)
+    assert any("snapshot" in e["message"] for e in entries)
