@@ -333,7 +333,9 @@ class _Replay:
             self.rejects.write_chunk(chunk)
             if bar is not None:
                 bar.update(chunk.end_offset - bar.n)
-                bar.set_postfix(events=f"{self.counters.events_applied:,}",
+                rate = self.counters.events_applied / max(time.monotonic() - self.started_wall, 1e-9)
+                # the bound is that of the state so far; a replay settles before each snapshot
+                bar.set_postfix(events=f"{self.counters.events_applied:,}", per_s=f"{rate:,.0f}",
                                 bound=f"{self.ranker.certified_bound():.2g}")
 
     def _wait(self, seg: Segment) -> None:
