@@ -224,7 +224,8 @@ def test_edges_hold_exactly_the_final_edge_set(replayed: tuple[GeneratedLog, Pat
     log, cli_root, _ = replayed
     edges = read_edges(snapshot_dir(cli_root))
     assert edges == log.model.edges
-    assert max(sum(1 for u, _ in edges if u == x) for x in ("u0", "u1")) > 64  # the rescale repair ran
+    # the log reaches the engine's O(1) rescale repair: some node has more than 64 out-edges
+    assert max(sum(1 for u, _ in edges if u == x) for x in ("u0", "u1")) > 64
 
 
 def test_manifest_counts_and_checksums(replayed: tuple[GeneratedLog, Path, Path]) -> None:
