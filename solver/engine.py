@@ -49,6 +49,10 @@ MAX_WEIGHT = 1e100
 #: Factor by which the push threshold falls between local phases.
 THETA_STEP = 0.5
 
+#: Once the rounding of seed updates may exceed this share of a profile's error
+#: budget, its residual is recomputed exactly before settling.
+SEED_ROUNDING_SHARE = 1e-3
+
 #: Share of the residual budget that tiny residuals may hold while parked off the
 #: active lists (so that each settle scans only nodes that matter).
 PARK_SHARE = 0.25
@@ -127,6 +131,7 @@ class Engine:
         self._in_active = np.zeros((1, cap), dtype=np.bool_)
         self._n_active = np.zeros(1, dtype=np.int64)
         self._parked = np.zeros(1)  # residual mass of nodes parked off the active lists
+        self._seed_error = np.zeros(1)  # rounding bound of seed updates to the residual, per profile
         self._queue = np.zeros(cap, dtype=np.int32)
         self._in_queue = np.zeros(cap, dtype=np.bool_)
         self._tmp = np.zeros(cap)
@@ -157,6 +162,7 @@ class Engine:
         self._in_active = np.vstack([self._in_active, np.zeros(cap, dtype=np.bool_)])
         self._n_active = np.append(self._n_active, 0)
         self._parked = np.append(self._parked, 0.0)
+        self._seed_error = np.append(self._seed_error, 0.0)
         return len(self.profiles) - 1
 
     def ensure_nodes(self, n_nodes: int, n_new_edges: int = 0) -> None:
@@ -230,7 +236,7 @@ class Engine:
                 g.head, g.out_weight, g.out_degree, g.src, g.dst, g.weight, g.next, g.prev,
                 g.table, g.counters,
                 self.P, self.R, self.S, self.teleport, self.damping,
-                self._active, self._n_active, self._in_active, self._parked,
+                self._active, self._n_active, self._in_active, self._parked, self._seed_error,
                 kernels.LOCAL_REPAIR_MAX_DEGREE,
             )
         )
@@ -240,6 +246,9 @@ class Engine:
         tol = self.tolerance if tolerance is None else float(tolerance)
         total = SettleStats()
         for k in range(len(self.profiles)):
+            if self._seed_error[k] > SEED_ROUNDING_SHARE * tol * float(self.S[k, : self.n_nodes].sum()):
+                # seed updates may have rounded the residual beyond a sliver of the budget
+                self._recompute_profile_residual(k)
             total.add(self._settle_profile(k, tol))
             if self.S[k, : self.n_nodes].any() and self.P[k, : self.n_nodes].sum() <= 0.0:
                 # the running residual lost the teleport mass to cancellation (a seed removed and
@@ -293,6 +302,7 @@ class Engine:
         scale = max(float(np.abs(self.S[k, :n]).sum()), 1.0)
         drift = float(np.abs(fresh - self.R[k, :n]).max(initial=0.0)) / scale
         self.R[k, :n] = fresh
+        self._seed_error[k] = 0.0
         self._reset_active(k)
         return drift
 

@@ -220,7 +220,7 @@ def _out_weight_sum(head, e_w, e_next, u):
 def apply_events(
     op, src, dst, wt,
     head, out_weight, out_degree, e_src, e_dst, e_w, e_next, e_prev, table, counters,
-    P, R, S, a, d, active, n_active, in_active, parked, local_max_degree,
+    P, R, S, a, d, active, n_active, in_active, parked, seed_error, local_max_degree,
 ):
     """Apply one batch of events in order and repair every profile.
 
@@ -252,6 +252,9 @@ def apply_events(
             if change == 0.0:
                 noop += 1
                 continue
+            # r(u) = s(u) + (flow terms) is stored as one number: a seed weight far above the
+            # flow terms rounds them away, so the rounding is tallied for the engine to repair
+            seed_error[v] += 2.3e-16 * (abs(R[v, u]) + abs(S[v, u]) + abs(wt[i]))
             S[v, u] = wt[i]
             _mark(v, u, R, active, n_active, in_active, parked)
             R[v, u] += change
