@@ -91,6 +91,21 @@ def check_snapshot_against(stream: Stream, snap: Path, tolerance: float) -> dict
 CHILDREN: list[subprocess.Popen] = []
 
 
+def sigterm_and_check(proc: subprocess.Popen, stream: Stream, root: Path, tolerance: float) -> dict:
+    """SIGTERM ``proc``: it must exit 0 within 10 s leaving a final snapshot that counts every record once."""
+    import signal
+    import time
+
+    started = time.monotonic()
+    proc.send_signal(signal.SIGTERM)
+    _, err = proc.communicate(timeout=30)
+    assert proc.returncode == 0, err.decode()[-2000:]
+    assert time.monotonic() - started < 10
+    manifest = check_snapshot_against(stream, newest_snapshot(root), tolerance)
+    assert manifest["events_applied"] + manifest["events_rejected"] == len(stream.records)
+    return manifest
+
+
 def ranktide(*args: str, env: dict | None = None, **kwargs) -> subprocess.Popen:
     """Start the ``ranktide`` command line as a child process."""
     full_env = {**os.environ, **(env or {})}

@@ -15,7 +15,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from stream_helpers import Stream, check_snapshot_against, newest_snapshot, ranktide
+from stream_helpers import Stream, check_snapshot_against, newest_snapshot, ranktide, sigterm_and_check
 
 TOLERANCE = 1e-6
 SLOW = {"RANKTIDE_FILE_CHUNK_BYTES": "2048"}  # small polls, so a crash lands mid-stream
@@ -88,13 +88,7 @@ def test_sigterm_finishes_with_a_final_snapshot(tmp_path: Path) -> None:
     proc = ranktide(*_run_args(log, root, "--snapshot-interval", "3600"))
     _wait_for(lambda: (root / "rejects.jsonl").exists() or _has_snapshot(root), what="the consumer to start")
     time.sleep(1.0)
-    started = time.monotonic()
-    proc.send_signal(signal.SIGTERM)
-    proc.communicate(timeout=30)
-    assert proc.returncode == 0
-    assert time.monotonic() - started < 10
-    manifest = check_snapshot_against(stream, newest_snapshot(root), TOLERANCE)
-    assert manifest["events_applied"] + manifest["events_rejected"] == len(stream.records)
+    sigterm_and_check(proc, stream, root, TOLERANCE)
 
 
 def test_a_corrupted_newest_snapshot_is_skipped(tmp_path: Path) -> None:
