@@ -643,10 +643,10 @@ class LocalKafka:
 # ---------------------------------------------------------------------------
 
 
-def _parser() -> argparse.ArgumentParser:
-    """Build the argument parser for ``python -m stream.broker``."""
+def _parser(prog: str) -> argparse.ArgumentParser:
+    """Build the argument parser for ``ranktide broker`` (or ``python -m stream.broker``)."""
     parser = argparse.ArgumentParser(
-        prog="python -m stream.broker",
+        prog=prog,
         description=(f"Run a local single-node Apache Kafka {KAFKA_VERSION} broker "
                      "(KRaft mode, 127.0.0.1 only) for tests and trying ranktide out. "
                      "Needs Java 17+ and Maven; jars are cached in "
@@ -695,27 +695,29 @@ def _serve(args: argparse.Namespace) -> int:
         signal.signal(signal.SIGTERM, previous)
 
 
-def main(argv: list[str] | None = None) -> int:
-    """Entry point of ``python -m stream.broker``.
+def main(argv: list[str] | None = None, prog: str = "python -m stream.broker") -> int:
+    """Entry point of ``python -m stream.broker`` and ``ranktide broker``.
 
     Parameters
     ----------
     argv : list of str, optional
         Arguments without the program name; defaults to ``sys.argv[1:]``.
+    prog : str
+        Program name shown in usage and help.
 
     Returns
     -------
     int
         Exit status.
     """
-    args = _parser().parse_args(argv)
+    args = _parser(prog).parse_args(argv)
     try:
         if args.command == "fetch":
             print(fetch_jars())
             return 0
         return _serve(args)
     except RuntimeError as exc:
-        print(f"error: {exc}", file=sys.stderr)
+        print(f"{prog}: error: {exc}", file=sys.stderr)
         return 1
 
 

@@ -209,7 +209,7 @@ def _cmd_bench(args: argparse.Namespace) -> int:
 def _cmd_broker(args: argparse.Namespace) -> int:
     from stream import broker
 
-    return broker.main(args.broker_args)
+    return broker.main(args.broker_args, prog="ranktide broker")
 
 
 def build_parser() -> argparse.ArgumentParser:
