@@ -206,12 +206,6 @@ def _cmd_bench(args: argparse.Namespace) -> int:
     return run_bench(args)
 
 
-def _cmd_broker(args: argparse.Namespace) -> int:
-    from stream import broker
-
-    return broker.main(args.broker_args, prog="ranktide broker")
-
-
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="ranktide", description=DESCRIPTION, formatter_class=argparse.RawDescriptionHelpFormatter
@@ -337,14 +331,18 @@ def build_parser() -> argparse.ArgumentParser:
     add_bench_options(p)
     p.set_defaults(func=_cmd_bench)
 
-    p = sub.add_parser("broker", help="fetch and run a local single-node Kafka broker (for trying the service)",
-                       add_help=False)
-    p.add_argument("broker_args", nargs=argparse.REMAINDER)
-    p.set_defaults(func=_cmd_broker)
+    # listed for --help; main() hands 'ranktide broker ...' to stream.broker before parsing
+    sub.add_parser("broker", help="fetch and run a local single-node Kafka broker (for trying the service)")
     return parser
 
 
 def main(argv: list[str] | None = None) -> int:
+    argv = sys.argv[1:] if argv is None else argv
+    if argv[:1] == ["broker"]:
+        # everything after 'broker' belongs to the broker's own parser, --help included
+        from stream import broker
+
+        return broker.main(argv[1:], prog="ranktide broker")
     parser = build_parser()
     args = parser.parse_args(argv)
     logging.basicConfig(level=getattr(logging, str(args.log_level).upper(), logging.WARNING),
