@@ -643,6 +643,13 @@ class LocalKafka:
 # ---------------------------------------------------------------------------
 
 
+def _topic_spec(text: str) -> tuple[str, int]:
+    name, _, count = text.partition(":")
+    if not name or (count and not count.isdigit()) or count == "0":
+        raise argparse.ArgumentTypeError(f"expected NAME or NAME:PARTITIONS, got {text!r}")
+    return name, int(count or 1)
+
+
 def _parser(prog: str) -> argparse.ArgumentParser:
     """Build the argument parser for ``ranktide broker`` (or ``python -m stream.broker``)."""
     parser = argparse.ArgumentParser(
@@ -663,6 +670,8 @@ def _parser(prog: str) -> argparse.ArgumentParser:
     start.add_argument("--data", metavar="DIR", default=None,
                        help="folder for config, log and storage; kept and reusable "
                             "(default: a temporary folder removed on exit)")
+    start.add_argument("--topic", action="append", type=_topic_spec, metavar="NAME[:PARTITIONS]",
+                       help="create this topic once the broker is up (default 1 partition); may be repeated")
     start.add_argument("--timeout", type=float, default=120.0,
                        help="seconds to wait for the broker to come up (default: 120)")
     commands.add_parser("fetch", help="only fetch the broker's jars with Maven",
@@ -681,6 +690,9 @@ def _serve(args: argparse.Namespace) -> int:
     broker = LocalKafka(port=args.port, data_dir=args.data)
     try:
         broker.start(timeout=args.timeout)
+        for name, partitions in args.topic or []:
+            broker.create_topic(name, partitions=partitions, exist_ok=True)
+            print(f"topic: {name} ({partitions} partition{'s' if partitions > 1 else ''})", flush=True)
         print(f"bootstrap: {broker.bootstrap}", flush=True)
         print(f"data: {broker.data_dir}  log: {broker.log_file}", file=sys.stderr, flush=True)
         while broker.is_running():
