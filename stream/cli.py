@@ -259,7 +259,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--snapshot-interval", type=_positive_float, help="seconds between snapshots (default 60)")
     p.add_argument("--keep-snapshots", type=int, help="snapshots kept, older ones pruned (default 5)")
     p.add_argument("--config", type=Path, help="TOML configuration file")
-    p.add_argument("--micro-batch", type=int, help="events applied between settles (default 50000)")
+    p.add_argument("--micro-batch", type=int, help="most events handed to the engine at once (default 50000)")
     p.add_argument("--rejects", type=Path, help="rejects file (default ROOT/rejects.jsonl)")
     p.add_argument("--rejects-topic", help="send rejects to this Kafka topic instead of a file")
     p.add_argument("--score-topic", help="Kafka topic for the score-change feed (log-compacted, keyed profile/node)")

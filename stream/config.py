@@ -59,7 +59,11 @@ class ServiceConfig:
     keep_snapshots : int
         How many snapshots to keep; older ones are pruned.
     micro_batch : int
-        Events applied between two settles.
+        Most events handed to the engine in one call.
+    settle_interval : float
+        While a backlog is being read, settle at most this often (seconds);
+        the engine settles as soon as the source is caught up, and always
+        before a snapshot or a score-feed round.
     poll_records : int
         Largest number of messages taken from the source in one poll.
     file_chunk_bytes : int
@@ -97,6 +101,7 @@ class ServiceConfig:
     snapshot_events: int = 0
     keep_snapshots: int = 5
     micro_batch: int = 50_000
+    settle_interval: float = 1.0
     poll_records: int = 100_000
     file_chunk_bytes: int = 8 << 20
     rejects: str = ""

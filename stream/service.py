@@ -158,6 +158,8 @@ class Service:
         self._owner = False     # this process owns the graph (always, for a file source)
         self._events_at_snapshot = 0
         self._last_snapshot = time.monotonic()
+        self._unsettled = False  # events applied since the last settle
+        self._settled_at = time.monotonic()
 
     # -------------------------------------------------------------- lifecycle
     def request_stop(self, *_args) -> None:
@@ -233,15 +235,18 @@ class Service:
                     self._apply(chunk)
                     rejects.write(chunk)
                     self._dirty = True
+                else:
+                    self._settle()  # caught up: scores fresh now, not only at the next interval
                 self.metrics.lag = self.source.lag()
                 if feed is not None and self._dirty and feed.due():
+                    self._settle()
                     self.metrics.feed_sent += feed.publish(self.ranker, self.source.positions())
                 self._snapshot_if_due(rejects)
                 if cfg.stop_at_end and chunk is None and self.source.at_end():
                     log.info("source exhausted: stopping")
                     break
             if self._owner:
-                self._snapshot(rejects, reason="final")
+                self._snapshot(rejects, reason="final")  # settles first
                 if feed is not None:
                     feed.publish(self.ranker, self.source.positions())
         except SnapshotError as exc:
@@ -273,6 +278,7 @@ class Service:
 
     # -------------------------------------------------------------- work
     def _apply(self, chunk: SourceChunk) -> None:
+        """Apply a chunk's events in micro-batches; settle when a settle is due."""
         started = time.perf_counter()
         batch = chunk.parsed.batch
         step = self.cfg.micro_batch
@@ -280,17 +286,28 @@ class Service:
             part = batch.slice(start, start + step)
             self.counters.events_noop += self.ranker.apply(part)
             self.counters.events_applied += len(part)
-            stats = self.ranker.settle()
-            self.metrics.push_edges += stats.edge_touches
+            self._unsettled = True
+            if time.monotonic() - self._settled_at >= self.cfg.settle_interval:
+                self._settle()
         self.counters.events_rejected += len(chunk.parsed.reasons)
         self.metrics.record_batch(len(batch), len(chunk.parsed.reasons), time.perf_counter() - started)
-        self.metrics.bounds = {p: self.ranker.certified_bound(p) for p in self.ranker.profiles}
+
+    def _settle(self) -> None:
+        """Bring every profile within the tolerance (scores are fresh again)."""
+        if self._unsettled:
+            self.metrics.push_edges += self.ranker.settle().edge_touches
+            self.metrics.bounds = {p: self.ranker.certified_bound(p) for p in self.ranker.profiles}
+            self._unsettled = False
+        self._settled_at = time.monotonic()
 
     def _snapshot(self, rejects: RejectsSink, reason: str = "interval") -> Path:
         started = time.perf_counter()
         rejects.flush()
         positions = {**self.source.positions(), "rejects_bytes": rejects.size()}
-        path = write_snapshot(self.out, self.ranker, self.counters, positions)
+        path = write_snapshot(self.out, self.ranker, self.counters, positions)  # settles first
+        self._unsettled = False
+        self._settled_at = time.monotonic()
+        self.metrics.bounds = {p: self.ranker.certified_bound(p) for p in self.ranker.profiles}
         self.source.commit(positions)
         removed = prune(self.out, self.cfg.keep_snapshots)
         self._dirty = False
