@@ -252,6 +252,9 @@ class Service:
         except SnapshotError as exc:
             log.error("%s", exc)
             return 3
+        except OSError as exc:  # the rejects file, for instance, on a full disk
+            log.error("cannot write %s: %s", exc.filename or "output", exc.strerror or exc)
+            return 3
         finally:
             self._closing = True
             if lock is not None:

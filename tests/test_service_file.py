@@ -197,3 +197,48 @@ def test_metrics_endpoint_and_json_logs(tmp_path: Path) -> None:
     entries = [json.loads(line) for line in err.decode().splitlines() if line.startswith("{")]
     assert entries and all({"time", "level", "logger", "message"} <= set(e) for e in entries)
     assert any("snapshot" in e["message"] for e in entries)
+
+
+@pytest.fixture
+def tiny_disk(tmp_path: Path):
+    """A 512 KiB tmpfs (needs root and mount rights, as on this project's machines)."""
+    import subprocess
+
+    mount_point = tmp_path / "disk"
+    mount_point.mkdir()
+    done = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=512k", "tmpfs", str(mount_point)],
+                          capture_output=True, text=True)
+    if done.returncode != 0:
+        pytest.skip(f"cannot mount a small tmpfs here: {done.stderr.strip()}")
+    try:
+        yield mount_point
+    finally:
+        subprocess.run(["umount", "-l", str(mount_point)], check=False)
+
+
+def test_a_full_disk_is_a_clear_error_and_leaves_no_half_snapshot(tiny_disk: Path, tmp_path: Path) -> None:
+    import subprocess
+
+    rng = np.random.default_rng(12)
+    stream = Stream()
+    stream.extend(rng, 300, n_nodes=100)
+    log, root = tmp_path / "events.jsonl", tiny_disk / "snaps"
+    _append(log, stream.records)
+    assert ranktide(*_run_args(log, root, "--stop-at-end")).wait(60) == 0  # a small first snapshot fits
+    stream.extend(rng, 60_000, n_nodes=60_000)  # the next one does not
+    _append(log, stream.records[300:])
+    proc = ranktide(*_run_args(log, root, "--stop-at-end"))
+    _, err = proc.communicate(timeout=120)
+    assert proc.returncode == 3
+    assert "No space left on device" in err.decode() and "cannot write snapshot" in err.decode()
+    from stream.snapshots import read_manifest, verify
+
+    left = sorted(root.iterdir())
+    assert not [p for p in left if p.name.endswith(".partial")]  # the failed one was cleaned up
+    for snap in (p for p in left if p.name.startswith("snap-")):  # every snapshot a restart may load is whole
+        verify(snap, read_manifest(snap))
+    # with room again, a restart resumes from the good snapshot and counts every record once
+    subprocess.run(["mount", "-o", "remount,size=256m", str(tiny_disk)], check=True)
+    assert ranktide(*_run_args(log, root, "--stop-at-end")).wait(120) == 0
+    manifest = check_snapshot_against(stream, newest_snapshot(root), TOLERANCE)
+    assert manifest["events_applied"] + manifest["events_rejected"] == len(stream.records)
