@@ -47,8 +47,8 @@ def describe(manifest: dict, path: Path) -> list[str]:
         ok = "within" if bound <= manifest["tolerance"] else "ABOVE"
         lines.append(f"profile {name}: certified L1 error at most {bound:.3g} ({ok} tolerance)")
     pos = manifest.get("positions", {})
-    if "file" in pos:
-        lines.append(f"source: file {pos['file']} up to byte {pos.get('offset', 0):,}")
+    for path, where in pos.get("files", {}).items():
+        lines.append(f"source: file {path} up to byte {where.get('offset', 0):,} (line {where.get('line', 0):,})")
     for topic, parts in pos.get("kafka", {}).items():
         desc = ", ".join(f"p{p}@{o}" for p, o in sorted(parts.items(), key=lambda kv: int(kv[0])))
         lines.append(f"source: kafka topic {topic}, next offsets {desc}")

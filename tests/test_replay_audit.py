@@ -175,6 +175,7 @@ def test_top_and_score_read_the_newest_snapshot(random_log, tmp_path: Path) -> N
     assert got == {best[0][0]: best[0][1], "no-such-node": None}
     status = _cli("status", str(tmp_path / "snaps"))
     assert status.returncode == 0 and "within tolerance" in status.stdout
+    assert f"source: file {Path(log).resolve()}" in status.stdout
 
 
 def test_the_demo_runs_end_to_end_and_leaves_its_files(tmp_path: Path) -> None:
