@@ -26,6 +26,15 @@ def _append(path: Path, records: list[tuple[bytes, bytes]]) -> None:
         fh.write(b"".join(value + b"\n" for _, value in records))
 
 
+def _logged_stream(folder: Path, rng: np.random.Generator, count: int, **kwargs) -> tuple[Stream, Path]:
+    """``count`` records (with their truth) written to ``folder/events.jsonl``."""
+    stream = Stream()
+    stream.extend(rng, count, **kwargs)
+    log = folder / "events.jsonl"
+    _append(log, stream.records)
+    return stream, log
+
+
 def _wait_for(predicate, timeout: float = 60.0, what: str = "condition") -> None:
     deadline = time.monotonic() + timeout
     while time.monotonic() < deadline:
@@ -46,10 +55,8 @@ def _run_args(log: Path, root: Path, *extra: str) -> list[str]:
 
 def test_follows_a_growing_file_and_resumes_after_kill9(tmp_path: Path) -> None:
     rng = np.random.default_rng(11)
-    stream = Stream()
-    stream.extend(rng, 6000)
-    log, root = tmp_path / "events.jsonl", tmp_path / "snaps"
-    _append(log, stream.records)
+    stream, log = _logged_stream(tmp_path, rng, 6000)
+    root = tmp_path / "snaps"
     first = ranktide(*_run_args(log, root), env=SLOW)
     _wait_for(lambda: _has_snapshot(root), what="a first snapshot")
     # grow the file while the consumer runs, ending with half a line
@@ -81,10 +88,8 @@ def test_follows_a_growing_file_and_resumes_after_kill9(tmp_path: Path) -> None:
 
 
 def test_sigterm_finishes_with_a_final_snapshot(tmp_path: Path) -> None:
-    stream = Stream()
-    stream.extend(np.random.default_rng(5), 3000)
-    log, root = tmp_path / "events.jsonl", tmp_path / "snaps"
-    _append(log, stream.records)
+    stream, log = _logged_stream(tmp_path, np.random.default_rng(5), 3000)
+    root = tmp_path / "snaps"
     proc = ranktide(*_run_args(log, root, "--snapshot-interval", "3600"))
     _wait_for(lambda: (root / "rejects.jsonl").exists() or _has_snapshot(root), what="the consumer to start")
     time.sleep(1.0)
@@ -93,10 +98,8 @@ def test_sigterm_finishes_with_a_final_snapshot(tmp_path: Path) -> None:
 
 def test_a_corrupted_newest_snapshot_is_skipped(tmp_path: Path) -> None:
     rng = np.random.default_rng(8)
-    stream = Stream()
-    stream.extend(rng, 2000)
-    log, root = tmp_path / "events.jsonl", tmp_path / "snaps"
-    _append(log, stream.records)
+    stream, log = _logged_stream(tmp_path, rng, 2000)
+    root = tmp_path / "snaps"
     assert ranktide(*_run_args(log, root, "--stop-at-end")).wait(60) == 0
     stream.extend(rng, 2000)
     _append(log, stream.records[2000:])
@@ -115,10 +118,7 @@ def test_a_corrupted_newest_snapshot_is_skipped(tmp_path: Path) -> None:
 
 
 def test_an_unwritable_snapshot_root_is_a_clear_error(tmp_path: Path) -> None:
-    stream = Stream()
-    stream.extend(np.random.default_rng(2), 200)
-    log = tmp_path / "events.jsonl"
-    _append(log, stream.records)
+    _, log = _logged_stream(tmp_path, np.random.default_rng(2), 200)
     blocker = tmp_path / "not-a-folder"
     blocker.write_text("a file where the snapshot root should be")
     proc = ranktide(*_run_args(log, blocker / "snaps", "--stop-at-end"))
@@ -166,10 +166,8 @@ def test_metrics_endpoint_and_json_logs(tmp_path: Path) -> None:
     """Prometheus text format (exposition format 0.0.4) on 127.0.0.1, structured logs on request."""
     import urllib.request
 
-    stream = Stream()
-    stream.extend(np.random.default_rng(6), 3000)
-    log, root = tmp_path / "events.jsonl", tmp_path / "snaps"
-    _append(log, stream.records)
+    stream, log = _logged_stream(tmp_path, np.random.default_rng(6), 3000)
+    root = tmp_path / "snaps"
     port = _free_port()
     args = [a for a in _run_args(log, root) if a not in ("--metrics", "")]
     proc = ranktide(*args, "--metrics", f"127.0.0.1:{port}", "--log-json")
@@ -220,10 +218,8 @@ def test_a_full_disk_is_a_clear_error_and_leaves_no_half_snapshot(tiny_disk: Pat
     import subprocess
 
     rng = np.random.default_rng(12)
-    stream = Stream()
-    stream.extend(rng, 300, n_nodes=100)
-    log, root = tmp_path / "events.jsonl", tiny_disk / "snaps"
-    _append(log, stream.records)
+    stream, log = _logged_stream(tmp_path, rng, 300, n_nodes=100)
+    root = tiny_disk / "snaps"
     assert ranktide(*_run_args(log, root, "--stop-at-end")).wait(60) == 0  # a small first snapshot fits
     stream.extend(rng, 60_000, n_nodes=60_000)  # the next one does not
     _append(log, stream.records[300:])
