@@ -30,7 +30,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from . import kernels
-from .exact import solve, transition_transpose
+from .exact import solve
 from .graph import DynamicGraph
 from .metrics import certified_bound, top_k_indices
 
@@ -352,8 +352,7 @@ class Engine:
         """Scores re-solved from scratch (``warm=False``) or from ``p`` to ``tol``."""
         k = self.profile_index(profile)
         n = self.n_nodes
-        src, dst, w = self.graph.edge_list()
-        PT = transition_transpose(src, dst, w, n)
+        PT = self.graph.transition_transpose()
         x0 = self.P[k, :n] if warm else None
         return solve(PT, self.S[k, :n], self.damping, tol, x0=x0).scores
 
@@ -364,8 +363,7 @@ class Engine:
         operators who want the residual near zero. Returns the iterations used.
         """
         n = self.n_nodes
-        src, dst, w = self.graph.edge_list()
-        PT = transition_transpose(src, dst, w, n)
+        PT = self.graph.transition_transpose()
         iterations = 0
         for k in range(len(self.profiles)):
             x0 = self.P[k, :n] if warm and self.P[k, :n].any() else None

@@ -187,14 +187,12 @@ class DynamicGraph:
         src, _, w = self.edge_list()
         return np.bincount(src, weights=w, minlength=self.n_nodes)[: self.n_nodes]
 
-    def transition_matrix(self):
-        """``P^T`` as a SciPy CSR matrix (``P[u, v] = w(u,v) / W(u)``; dangling rows zero)."""
-        import scipy.sparse as sp
+    def transition_transpose(self):
+        """``P^T`` as a SciPy CSR matrix (see :func:`solver.exact.transition_transpose`)."""
+        from .exact import transition_transpose
 
         src, dst, w = self.edge_list()
-        out_w = np.bincount(src, weights=w, minlength=self.n_nodes)
-        vals = w / out_w[src]
-        return sp.csr_matrix((vals, (dst, src)), shape=(self.n_nodes, self.n_nodes))
+        return transition_transpose(src, dst, w, self.n_nodes)
 
     def memory_bytes(self) -> int:
         """Bytes held by the graph arrays (capacity included)."""

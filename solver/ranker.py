@@ -128,7 +128,6 @@ class Ranker:
         seed_rows = np.flatnonzero(is_seed)
         if seed_rows.size:
             dst[seed_rows] = self._profile_rows(batch.dst.take(pa.array(seed_rows)))
-        self.engine.ensure_nodes(len(self.ids))
         return self.engine.apply(batch.op, src, dst, batch.weight)
 
     def _profile_rows(self, names: pa.Array) -> np.ndarray:

@@ -271,21 +271,3 @@ def validate_table(table: pa.Table, limits: Limits = Limits(), pre_reasons: list
     )
     bad = np.flatnonzero(~ok)
     return Parsed(batch, rows.astype(np.int64), bad.astype(np.int64), [str(reasons[i]) for i in bad])
-
-
-def events_to_table(batch: EventBatch) -> pa.Table:
-    """The wire columns of a batch (inverse of :func:`validate_table` on valid rows)."""
-    is_seed = pa.array(batch.op == OP_SEED)
-    names = np.array(["insert", "delete", "seed"], dtype=object)[batch.op]
-    nulls = pa.nulls(len(batch), pa.string())
-    return pa.table(
-        {
-            "op": pa.array(names, pa.string()),
-            "src": pc.if_else(is_seed, nulls, batch.src),
-            "dst": pc.if_else(is_seed, nulls, batch.dst),
-            "weight": pa.array(batch.weight),
-            "ts": pa.array(batch.ts, pa.int64(), mask=batch.ts < 0),
-            "profile": pc.if_else(is_seed, batch.dst, nulls),
-            "node": pc.if_else(is_seed, batch.src, nulls),
-        }
-    )

@@ -26,7 +26,7 @@ class Metrics:
     lag: dict[str, int] = field(default_factory=dict)
     _rate_window: list[tuple[float, int, int]] = field(default_factory=list)
 
-    def record_batch(self, applied: int, rejected: int, seconds: float) -> None:
+    def record_batch(self, applied: int, rejected: int) -> None:
         self.events_applied += applied
         self.events_rejected += rejected
         now = time.monotonic()
