@@ -135,6 +135,7 @@ class Engine:
         self._queue = np.zeros(cap, dtype=np.int32)
         self._in_queue = np.zeros(cap, dtype=np.bool_)
         self._tmp = np.zeros(cap)
+        self._spill = np.zeros((kernels.SWEEP_CHUNKS - 1, cap))  # partial sums of parallel sweeps
 
     # ------------------------------------------------------------ structure
     @property
@@ -195,6 +196,7 @@ class Engine:
         self._queue = np.zeros(cap, dtype=np.int32)
         self._in_queue = np.zeros(cap, dtype=np.bool_)
         self._tmp = np.zeros(cap)
+        self._spill = np.zeros((kernels.SWEEP_CHUNKS - 1, cap))
 
     # ------------------------------------------------------------ events
     def apply(
@@ -266,7 +268,8 @@ class Engine:
             int(g.counters[0]),
             self.P, self.R, self.teleport, self.damping,
             self._active, self._n_active, self._in_active, self._parked,
-            self._queue, self._in_queue, self._tmp, SWEEP_SHARE, THETA_STEP, stats,
+            self._queue, self._in_queue, self._tmp, self._spill, self.graph.unit_weights,
+            SWEEP_SHARE, THETA_STEP, stats,
         )
         self._compact(k, tol)
         return SettleStats(*(int(x) for x in stats))
@@ -296,8 +299,8 @@ class Engine:
         n = self.n_nodes
         fresh = np.zeros(n)
         kernels.exact_residual(
-            k, n, self.P, self.S, g.src, g.dst, g.weight, int(g.counters[0]),
-            g.out_weight, self.teleport, self.damping, fresh,
+            k, n, self.P, self.S, g.src, g.dst, g.weight, int(g.counters[0]), self.graph.unit_weights,
+            g.out_weight, self.teleport, self.damping, self._tmp, self._spill, fresh,
         )
         scale = max(float(np.abs(self.S[k, :n]).sum()), 1.0)
         drift = float(np.abs(fresh - self.R[k, :n]).max(initial=0.0)) / scale

@@ -85,8 +85,9 @@ class GraphArrays:
     prev: np.ndarray
     table: np.ndarray
     # scalars packed in one array so that kernels can update them in place:
-    # [0] slots ever used (top), [1] free-list head, [2] live edges, [3] hash shift
-    counters: np.ndarray = field(default_factory=lambda: np.array([0, -1, 0, 0], dtype=np.int64))
+    # [0] slots ever used (top), [1] free-list head, [2] live edges, [3] hash shift,
+    # [4] live edges whose weight is not 1 (0 lets sweeps skip reading the weights)
+    counters: np.ndarray = field(default_factory=lambda: np.array([0, -1, 0, 0, 0], dtype=np.int64))
 
 
 def _grown(array: np.ndarray, size: int, fill: float | int) -> np.ndarray:
@@ -128,6 +129,11 @@ class DynamicGraph:
     def n_edges(self) -> int:
         """Number of stored (live) edges."""
         return int(self.arrays.counters[2])
+
+    @property
+    def unit_weights(self) -> bool:
+        """True when every live edge has weight 1 (an unweighted graph)."""
+        return int(self.arrays.counters[4]) == 0
 
     @property
     def node_capacity(self) -> int:

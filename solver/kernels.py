@@ -27,7 +27,7 @@ References
 from __future__ import annotations
 
 import numpy as np
-from numba import njit
+from numba import njit, prange
 
 from .graph import hash_home
 
@@ -41,6 +41,9 @@ OP_SEED = 2
 #: leaves a residual that sums to zero, which cancels out as it spreads
 #: instead of having to be absorbed by teleportation (see DEVELOPERS.md).
 LOCAL_REPAIR_MAX_DEGREE = 64
+
+#: Fixed number of slot chunks a global sweep is split into (see :func:`scatter_slots`).
+SWEEP_CHUNKS = 2
 
 # ---------------------------------------------------------------- hash table
 
@@ -269,6 +272,7 @@ def apply_events(
                     noop += 1
                     continue
                 e_w[e] = w_new
+                counters[4] += int(w_new != 1.0) - int(w_old != 1.0)
             else:
                 w_old = 0.0
                 e = _alloc_slot(counters, e_src, e_next)
@@ -276,6 +280,7 @@ def apply_events(
                 _hash_insert(table, shift, u, v, e)
                 out_degree[u] += 1
                 counters[2] += 1
+                counters[4] += int(w_new != 1.0)
         else:
             if cell < 0:
                 noop += 1
@@ -287,6 +292,7 @@ def apply_events(
             _unlink(head, e_src, e_next, e_prev, counters, e)
             out_degree[u] -= 1
             counters[2] -= 1
+            counters[4] -= int(w_old != 1.0)
         W_old = out_weight[u]
         W_new = W_old + (w_new - w_old)
         if out_degree[u] == 0 or W_new < 0.0:
@@ -325,8 +331,40 @@ def _done(rho, s_p, abs_p, tol):
     return rho * (1.0 + abs_p / s_p) <= tol * (s_p - rho)
 
 
+@njit(parallel=True, cache=True)
+def scatter_slots(out, spill, coef, n, e_src, e_dst, e_w, top, unit):
+    """``out[dst] += coef[src] * w`` over the live slots ``[0, top)``, on all threads.
+
+    The slots are cut into :data:`SWEEP_CHUNKS` fixed chunks: chunk 0 adds into
+    ``out``, chunk ``c > 0`` into ``spill[c - 1]``, and the spills are added
+    afterwards in order. The chunk count, not the thread count, fixes the
+    order of every floating-point sum, so results are the same on any machine.
+    With ``unit`` (every weight is 1) the weights are not read: the scatter is
+    bound by memory traffic, and this drops a third of it.
+    """
+    for c in prange(SWEEP_CHUNKS):
+        lo = top * c // SWEEP_CHUNKS
+        hi = top * (c + 1) // SWEEP_CHUNKS
+        target = out if c == 0 else spill[c - 1]
+        if c > 0:
+            target[:n] = 0.0
+        if unit:
+            for e in range(lo, hi):
+                x = e_src[e]
+                if x >= 0:
+                    target[e_dst[e]] += coef[x]
+        else:
+            for e in range(lo, hi):
+                x = e_src[e]
+                if x >= 0:
+                    target[e_dst[e]] += coef[x] * e_w[e]
+    for c in range(1, SWEEP_CHUNKS):
+        for u in range(n):
+            out[u] += spill[c - 1, u]
+
+
 @njit(cache=True)
-def _sweep(k, P, R, tmp, n, e_src, e_dst, e_w, top, out_weight, a, d):
+def _sweep(k, P, R, tmp, spill, n, e_src, e_dst, e_w, top, unit, out_weight, a, d):
     """One global sweep: ``p += a r``, ``r = d P^T r`` (one pass over the slots)."""
     for u in range(n):
         ru = R[k, u]
@@ -334,10 +372,7 @@ def _sweep(k, P, R, tmp, n, e_src, e_dst, e_w, top, out_weight, a, d):
         W = out_weight[u]
         tmp[u] = d * ru / W if W > 0.0 else 0.0
         R[k, u] = 0.0
-    for e in range(top):
-        x = e_src[e]
-        if x >= 0:
-            R[k, e_dst[e]] += tmp[x] * e_w[e]
+    scatter_slots(R[k], spill, tmp, n, e_src, e_dst, e_w, top, unit)
     rho = 0.0
     s_p = 0.0
     abs_p = 0.0
@@ -352,7 +387,8 @@ def _sweep(k, P, R, tmp, n, e_src, e_dst, e_w, top, out_weight, a, d):
 def settle_profile(
     k, tol, n, m,
     head, out_weight, out_degree, e_src, e_dst, e_w, e_next, top,
-    P, R, a, d, active, n_active, in_active, parked, queue, in_queue, tmp, sweep_share, theta_step, stats,
+    P, R, a, d, active, n_active, in_active, parked, queue, in_queue, tmp, spill, unit, sweep_share, theta_step,
+    stats,
 ):
     """Push profile ``k`` until its certified bound is at most ``tol``.
 
@@ -391,7 +427,7 @@ def settle_profile(
         rounds += 1
         if sweeping or rounds > 10_000:
             before = rho
-            rho, s_p, abs_p = _sweep(k, P, R, tmp, n, e_src, e_dst, e_w, top, out_weight, a, d)
+            rho, s_p, abs_p = _sweep(k, P, R, tmp, spill, n, e_src, e_dst, e_w, top, unit, out_weight, a, d)
             stats[2] += 1
             stats[3] += m
             stalled = stalled + 1 if rho >= before else 0
@@ -483,14 +519,13 @@ def settle_profile(
 
 
 @njit(cache=True)
-def exact_residual(k, n, P, S, e_src, e_dst, e_w, top, out_weight, a, d, out):
+def exact_residual(k, n, P, S, e_src, e_dst, e_w, top, unit, out_weight, a, d, tmp, spill, out):
     """``r = s - p/a + (d/a) P^T p`` recomputed from scratch into ``out``."""
     for u in range(n):
         out[u] = S[k, u] - P[k, u] / a
-    for e in range(top):
-        x = e_src[e]
-        if x >= 0:
-            out[e_dst[e]] += (d / a) * P[k, x] * e_w[e] / out_weight[x]
+        W = out_weight[u]
+        tmp[u] = (d / a) * P[k, u] / W if W > 0.0 else 0.0
+    scatter_slots(out, spill, tmp, n, e_src, e_dst, e_w, top, unit)
 
 
 @njit(cache=True)

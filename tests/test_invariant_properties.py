@@ -22,6 +22,9 @@ After every sequence, and again after a final settle:
   max(||s||_1, 1) (design notes: ~1e-12);
 * the certified bound is never below the true normalised L1 error, and after
   ``settle(tol)`` it is at most ``tol``.
+Half of the sequences use weight 1 on every edge, so that global sweeps take
+their unweighted path; the engine's count of edges with a weight other than 1
+(which chooses that path) must equal the model's.
 Edge weights span 1e-3 to 1e3 and seed weights 1e-3 to 10; the defects
 found with wider ranges are pinned in ``test_known_engine_bugs.py``.
 """
@@ -90,6 +93,9 @@ def scenarios(draw: st.DrawFn) -> tuple[list[list[Event]], list[float | None], f
     if with_hub:
         kinds += [hub_events, hub_events]
     events = draw(st.lists(st.one_of(*kinds), min_size=8, max_size=80))
+    if draw(st.booleans()):
+        # an unweighted graph: sweeps then take the path that does not read weights
+        events = [(op, a, b, 1.0) if op != "seed" else (op, a, b, w) for op, a, b, w in events]
     cuts = sorted(set(draw(st.lists(st.integers(1, len(events)), max_size=6))) | {len(events)})
     batches = [events[a:b] for a, b in zip([0, *cuts], cuts)]
     if with_hub:
@@ -121,6 +127,9 @@ def check_state(ranker: Ranker, model: GraphModel) -> None:
     names = ranker.node_names().to_pylist()
     assert sorted(names) == sorted(model.nodes)
     assert engine_edges(ranker) == model.edges
+    non_unit = sum(w != 1.0 for w in model.edges.values())
+    assert int(engine.graph.arrays.counters[4]) == non_unit
+    assert engine.graph.unit_weights == (non_unit == 0)
     assert set(engine.profiles) == {GLOBAL, *model.seeds}
     PT = transition_transpose(names, model.edges)
     n = len(names)
