@@ -99,6 +99,20 @@ def log_format(path: Path) -> str:
     return "jsonl"
 
 
+def row_count_hint(path: Path) -> int | None:
+    """Rows a Parquet log holds (from its footer), None for other formats or an unreadable file.
+
+    A replay reserves room for that many edges at once instead of growing
+    the graph arrays step by step.
+    """
+    if log_format(Path(path)) != "parquet":
+        return None
+    try:
+        return int(pq.ParquetFile(path).metadata.num_rows)
+    except (OSError, pa.ArrowException):
+        return None
+
+
 def read_log(
     path: Path,
     limits: Limits = Limits(),

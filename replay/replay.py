@@ -14,7 +14,7 @@ import numpy as np
 
 from stream.snapshots import Counters, load_snapshot, write_snapshot
 
-from .logs import LogChunk, LogError, read_log
+from .logs import LogChunk, LogError, read_log, row_count_hint
 
 
 @dataclass
@@ -314,6 +314,10 @@ class _Replay:
     def run(self, bar) -> None:
         opts = self.options
         plan = _Plan(opts, self.counters.events_applied + self.counters.events_rejected)
+        rows = row_count_hint(self.log)
+        if rows:
+            engine = self.ranker.engine
+            engine.ensure_nodes(engine.n_nodes, max(rows - self.offset, 0))
         chunks = read_log(self.log, opts.limits, self.offset, self.line + 1)
         for chunk in chunks:
             chunk = self._drop_covered(chunk)

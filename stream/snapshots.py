@@ -33,6 +33,7 @@ from pathlib import Path
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
 from solver import GLOBAL, Ranker
@@ -117,43 +118,61 @@ def _fsync_dir(path: Path) -> None:
         os.close(fd)
 
 
+def _name_ranks(names: pa.Array) -> np.ndarray:
+    """Position of every node id in byte-wise name order (Arrow's string order)."""
+    order = pc.sort_indices(names).to_numpy()
+    ranks = np.empty(order.size, dtype=np.int64)
+    ranks[order] = np.arange(order.size)
+    return ranks
+
+
+def _by_rank(ids: np.ndarray, ranks: np.ndarray) -> np.ndarray:
+    """``ids`` reordered so that their names ascend."""
+    return ids[np.argsort(ranks[ids], kind="stable")]
+
+
 def _tables(ranker: Ranker) -> dict[str, pa.Table]:
+    """The snapshot's tables, each sorted by name so that equal states give equal files.
+
+    Rows are ordered by integer name ranks (one sort of the node ids) instead
+    of sorting the string columns: the same order as sorting by the strings,
+    at a fraction of the cost on millions of edges.
+    """
     eng = ranker.engine
     names = ranker.node_names()
+    ranks = _name_ranks(names)
     n = eng.n_nodes
-    node_cols, prof_cols, score_cols = [], [], []
-    seed_node, seed_prof, seed_w = [], [], []
-    for name in eng.profiles:
+    score_parts, seed_parts = [], []
+    for name in sorted(eng.profiles):
         sc = eng.scores(name)
         keep = np.arange(n) if name == GLOBAL else np.flatnonzero(sc)
-        node_cols.append(names.take(pa.array(keep)))
-        prof_cols.append(pa.array(np.full(keep.size, name, dtype=object), pa.string()))
-        score_cols.append(pa.array(sc[keep]))
+        keep = _by_rank(keep, ranks)
+        score_parts.append(pa.table({
+            "node": names.take(pa.array(keep)),
+            "profile": pa.array(np.full(keep.size, name, dtype=object), pa.string()),
+            "score": pa.array(sc[keep], pa.float64()),
+        }))
         if name != GLOBAL:
             s = eng.teleport_vector(name)
-            seeded = np.flatnonzero(s)
-            seed_node.append(names.take(pa.array(seeded)))
-            seed_prof.append(pa.array(np.full(seeded.size, name, dtype=object), pa.string()))
-            seed_w.append(pa.array(s[seeded]))
+            seeded = _by_rank(np.flatnonzero(s), ranks)
+            seed_parts.append(pa.table({
+                "profile": pa.array(np.full(seeded.size, name, dtype=object), pa.string()),
+                "node": names.take(pa.array(seeded)),
+                "weight": pa.array(s[seeded], pa.float64()),
+            }))
     src, dst, w = eng.graph.edge_list()
-    edges = pa.table({"src": names.take(pa.array(src)), "dst": names.take(pa.array(dst)), "weight": pa.array(w)})
-    scores = pa.table({
-        "node": pa.concat_arrays(node_cols),
-        "profile": pa.concat_arrays(prof_cols),
-        "score": pa.concat_arrays(score_cols).cast(pa.float64()),
+    order = np.lexsort((ranks[dst], ranks[src]))
+    edges = pa.table({
+        "src": names.take(pa.array(src[order])),
+        "dst": names.take(pa.array(dst[order])),
+        "weight": pa.array(w[order], pa.float64()),
     })
-    empty = pa.array([], pa.string())
-    # sorted by name, so that equal states give equal files whatever their history
+    empty_seeds = pa.table({"profile": pa.array([], pa.string()), "node": pa.array([], pa.string()),
+                            "weight": pa.array([], pa.float64())})
     return {
-        "scores.parquet": scores.sort_by([("profile", "ascending"), ("node", "ascending")]),
-        "edges.parquet": edges.sort_by([("src", "ascending"), ("dst", "ascending")]),
-        "seeds.parquet": pa.table(
-            {
-                "profile": pa.concat_arrays(seed_prof) if seed_prof else empty,
-                "node": pa.concat_arrays(seed_node) if seed_node else empty,
-                "weight": pa.concat_arrays(seed_w).cast(pa.float64()) if seed_w else pa.array([], pa.float64()),
-            }
-        ).sort_by([("profile", "ascending"), ("node", "ascending")]),
+        "scores.parquet": pa.concat_tables(score_parts),
+        "edges.parquet": edges,
+        "seeds.parquet": pa.concat_tables(seed_parts) if seed_parts else empty_seeds,
     }
 
 

@@ -207,3 +207,15 @@ def test_a_csv_log_with_iso_times_and_bad_cells(tmp_path: Path) -> None:
     assert "heavy" in rejects[0]["reason"] and "ISO-8601" in rejects[1]["reason"]
     stream = Stream(edges={("b", "a"): 2.0}, nodes={"a", "b"})  # c appears only in rejected lines
     check_snapshot_against(stream, summary.snapshot, TOLERANCE)
+
+
+def test_row_count_hint_reads_the_parquet_footer_only(random_log, tmp_path: Path) -> None:
+    from replay.logs import row_count_hint
+
+    path, _ = random_log
+    table = pa.table({"op": ["insert"] * 3, "src": ["a", "b", "c"], "dst": ["b", "c", "a"]})
+    pq.write_table(table, tmp_path / "log.parquet")
+    assert row_count_hint(tmp_path / "log.parquet") == 3
+    assert row_count_hint(path) is None  # JSON Lines: unknown without reading it
+    (tmp_path / "broken.parquet").write_bytes(b"not parquet")
+    assert row_count_hint(tmp_path / "broken.parquet") is None  # the replay then reports the bad file
