@@ -41,7 +41,7 @@ def hash_home(u: int, v: int, shift: int) -> int:
     return np.int64((key * _GOLDEN) >> np.uint64(shift))
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def rebuild_hash(table: np.ndarray, shift: int, src: np.ndarray, dst: np.ndarray, top: int) -> None:
     """Fill an empty ``table`` with every live slot below ``top``."""
     mask = table.shape[0] - 1

@@ -41,7 +41,7 @@ def _same(a, a0, a1, b, b0, b1):
     return True
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def _intern(offsets, data, table, shift, store_off, store_data, hashes, counters, out):
     """Ids of the strings ``data[offsets[i]:offsets[i+1]]``, adding new ones.
 
@@ -72,7 +72,7 @@ def _intern(offsets, data, table, shift, store_off, store_data, hashes, counters
         out[i] = idx
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def _rehash(table, shift, hashes, n):
     mask = table.shape[0] - 1
     for idx in range(n):

@@ -42,6 +42,8 @@ OP_SEED = 2
 #: instead of having to be absorbed by teleportation (see DEVELOPERS.md).
 LOCAL_REPAIR_MAX_DEGREE = 64
 
+# Kernels release the interpreter lock (``nogil``): the service's fetch thread
+# decodes the next Kafka batch meanwhile.
 # Helpers called per edge or per event are inlined (``inline="always"``): a call
 # between compiled functions passes each array with reference counting, which
 # made the push loop three times slower than its memory traffic.
@@ -222,7 +224,7 @@ def _out_weight_sum(head, e_w, e_next, u):
     return total
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def apply_events(
     op, src, dst, wt,
     head, out_weight, out_degree, e_src, e_dst, e_w, e_next, e_prev, table, counters,
@@ -334,7 +336,7 @@ def _done(rho, s_p, abs_p, tol):
     return rho * (1.0 + abs_p / s_p) <= tol * (s_p - rho)
 
 
-@njit(parallel=True, cache=True)
+@njit(parallel=True, cache=True, nogil=True)
 def scatter_slots(out, spill, coef, n, e_src, e_dst, e_w, top, unit):
     """``out[dst] += coef[src] * w`` over the live slots ``[0, top)``, on all threads.
 
@@ -366,7 +368,7 @@ def scatter_slots(out, spill, coef, n, e_src, e_dst, e_w, top, unit):
             out[u] += spill[c - 1, u]
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def _sweep(k, P, R, tmp, spill, n, e_src, e_dst, e_w, top, unit, out_weight, a, d):
     """One global sweep: ``p += a r``, ``r = d P^T r`` (one pass over the slots)."""
     for u in range(n):
@@ -386,7 +388,7 @@ def _sweep(k, P, R, tmp, spill, n, e_src, e_dst, e_w, top, unit, out_weight, a, 
     return rho, s_p, abs_p
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def settle_profile(
     k, tol, n, m,
     head, out_weight, out_degree, e_src, e_dst, e_w, e_next, top,
@@ -521,7 +523,7 @@ def settle_profile(
     return rho, s_p, abs_p
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def exact_residual(k, n, P, S, e_src, e_dst, e_w, top, unit, out_weight, a, d, tmp, spill, out):
     """``r = s - p/a + (d/a) P^T p`` recomputed from scratch into ``out``."""
     for u in range(n):
@@ -531,7 +533,7 @@ def exact_residual(k, n, P, S, e_src, e_dst, e_w, top, unit, out_weight, a, d, t
     scatter_slots(out, spill, tmp, n, e_src, e_dst, e_w, top, unit)
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def park_threshold(k, R, active, n_active, budget):
     """Largest power of two ``t`` such that the residuals ``0 < |r| < t`` sum to at most ``budget``.
 
@@ -550,7 +552,7 @@ def park_threshold(k, R, active, n_active, budget):
     return np.inf
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def compact_active(k, R, active, n_active, in_active, parked, park_budget, park_each):
     """Shorten profile ``k``'s active list.
 
