@@ -15,6 +15,8 @@ Positions, as stored in a manifest's ``positions``:
 from __future__ import annotations
 
 import logging
+import queue
+import threading
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -244,6 +246,163 @@ def _text(value: bytes) -> str:
     return value[:2000].decode("utf-8", "replace")
 
 
+@dataclass
+class Fetched:
+    """One batch of Kafka messages, decoded by the fetch thread, not yet taken.
+
+    Positions move only when the service takes the batch (:meth:`KafkaSource.poll`),
+    so a snapshot never covers a message that was fetched but not applied.
+
+    Attributes
+    ----------
+    chunk : SourceChunk or None
+        The decoded messages (None when the batch held only events).
+    last : dict
+        (topic, partition) -> offset of the last message of the batch.
+    events : list of (code, key, offset, text)
+        End-of-partition and error events in their order.
+    """
+
+    chunk: SourceChunk | None
+    last: dict[tuple[str, int], int]
+    events: list[tuple[int, tuple[str, int], int, str, bool]]
+
+
+def fetch_batch(consumer, batch_records: int, limits: Limits, timeout: float, partitions: int) -> Fetched | None:
+    """Consume up to ``batch_records`` messages and decode them (no position changes).
+
+    The last offset of each partition is found scanning from the end, and the
+    scan stops once all ``partitions`` assigned partitions are seen.
+    """
+    messages = consumer.consume(num_messages=batch_records, timeout=timeout)
+    if not messages:
+        return None
+    failed = [m for m in messages if m.error() is not None]
+    good = [m for m in messages if m.error() is None] if failed else messages
+    last: dict[tuple[str, int], int] = {}
+    for msg in reversed(good):
+        key = (msg.topic(), msg.partition())
+        if key not in last:
+            last[key] = msg.offset()
+            if len(last) == partitions:
+                break
+    events = [(m.error().code(), (m.topic(), m.partition()), m.offset(), m.error().str(), m.error().fatal())
+              for m in failed]
+    return Fetched(decode_messages(good, limits) if good else None, last, events)
+
+
+@dataclass
+class _Call:
+    """A request for the fetch thread to run ``fn(consumer)`` (it owns the consumer)."""
+
+    fn: object
+    done: threading.Event = field(default_factory=threading.Event)
+    result: object = None
+    error: BaseException | None = None
+
+
+class Prefetch:
+    """A thread that fetches and decodes the next batches while the engine works.
+
+    The Kafka client builds one Python object per message, and the engine's
+    kernels release the interpreter lock: overlapping the two is most of the
+    end-to-end rate on two cores. At most ``depth`` batches wait; stopping
+    discards them (their positions were never taken). While it runs, the
+    thread is the only one that touches the consumer: a call from another
+    thread could wait behind a consume indefinitely, so commits are handed to
+    it (:meth:`call`) and it keeps the partitions' high watermarks for the lag.
+    """
+
+    def __init__(self, consumer, batch_records: int, limits: Limits, partitions: list[tuple[str, int]],
+                 depth: int = 2) -> None:
+        self._consumer = consumer
+        self._batch_records = batch_records
+        self._limits = limits
+        self._partitions = partitions
+        self.high: dict[tuple[str, int], int] = {}
+        self._queue: queue.Queue = queue.Queue(maxsize=depth)
+        self._requests: queue.Queue = queue.Queue()
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, name="ranktide-fetch", daemon=True)
+        self._thread.start()
+
+    def _run(self) -> None:
+        try:
+            while not self._stop.is_set():
+                self._serve_requests()
+                item = fetch_batch(self._consumer, self._batch_records, self._limits, 0.1, len(self._partitions))
+                self._note_watermarks()
+                if item is not None:
+                    self._put(item)
+        except Exception as exc:  # noqa: BLE001 - handed to the service's thread, raised there
+            self._put(exc)
+        finally:
+            self._serve_requests(refuse=True)
+
+    def _serve_requests(self, refuse: bool = False) -> None:
+        while True:
+            try:
+                call = self._requests.get_nowait()
+            except queue.Empty:
+                return
+            try:
+                if refuse:
+                    raise RuntimeError("the Kafka fetch thread has stopped")
+                call.result = call.fn(self._consumer)
+            except Exception as exc:  # noqa: BLE001 - re-raised in the caller's thread
+                call.error = exc
+            call.done.set()
+
+    def _note_watermarks(self) -> None:
+        from confluent_kafka import TopicPartition
+
+        for key in self._partitions:
+            try:
+                _, high = self._consumer.get_watermark_offsets(TopicPartition(*key), cached=True)
+            except Exception:  # noqa: BLE001 - a lag figure is best effort
+                continue
+            if high is not None and high >= 0:
+                self.high[key] = high
+
+    def _put(self, item) -> None:
+        while not self._stop.is_set():
+            self._serve_requests()
+            try:
+                self._queue.put(item, timeout=0.1)
+                return
+            except queue.Full:
+                continue
+
+    def call(self, fn, timeout: float = 60.0):
+        """Run ``fn(consumer)`` on the fetch thread and return its result."""
+        request = _Call(fn)
+        self._requests.put(request)
+        if not self._thread.is_alive():
+            self._serve_requests(refuse=True)
+        if not request.done.wait(timeout):
+            raise RuntimeError(f"the Kafka consumer did not answer within {timeout:g} s")
+        if request.error is not None:
+            raise request.error
+        return request.result
+
+    def get(self, timeout: float) -> Fetched | None:
+        """The next fetched batch, or None after ``timeout`` seconds without one."""
+        try:
+            item = self._queue.get(timeout=timeout)
+        except queue.Empty:
+            return None
+        if isinstance(item, Exception):
+            raise item
+        return item
+
+    def stop(self) -> None:
+        """End the thread and drop what it fetched."""
+        self._stop.set()
+        self._thread.join()
+        while not self._queue.empty():
+            self._queue.get_nowait()
+
+
 class KafkaSource:
     """All partitions of one or more topics, consumed in large batches.
 
@@ -286,6 +445,12 @@ class KafkaSource:
         self._eof: set[tuple[str, int]] = set()
         self._assigned: set[tuple[str, int]] = set()
         self._read: set[tuple[str, int]] = set()  # partitions that delivered a message since assignment
+        self._prefetch: Prefetch | None = None
+
+    def _stop_prefetch(self) -> None:
+        if self._prefetch is not None:
+            self._prefetch.stop()
+            self._prefetch = None
 
     def _partitions(self, timeout: float = 30.0) -> list[tuple[str, int]]:
         deadline = time.monotonic() + timeout
@@ -303,6 +468,7 @@ class KafkaSource:
         from confluent_kafka import OFFSET_BEGINNING, TopicPartition
 
         wanted = {(t, int(p)): int(o) for t, parts in positions.get("kafka", {}).items() for p, o in parts.items()}
+        self._stop_prefetch()
         parts = []
         for key in self._partitions():
             start = wanted.get(key, OFFSET_BEGINNING)
@@ -312,11 +478,13 @@ class KafkaSource:
         self._assigned = {(p.topic, p.partition) for p in parts}
         self._eof.clear()
         self._read.clear()
+        self._prefetch = Prefetch(self._consumer, self.batch_records, self.limits, sorted(self._assigned))
         log.info("consuming %s", ", ".join(f"{p.topic}[{p.partition}]@{p.offset if p.offset >= 0 else 'start'}"
                                              for p in parts))
 
     def release(self) -> None:
         """Stop consuming (another process takes over)."""
+        self._stop_prefetch()
         self._consumer.unassign()
         self._assigned.clear()
         self._next.clear()
@@ -338,7 +506,7 @@ class KafkaSource:
         ]
         if offsets:
             try:
-                self._consumer.commit(offsets=offsets, asynchronous=False)
+                self._on_consumer(lambda consumer: consumer.commit(offsets=offsets, asynchronous=False))
             except KafkaException as exc:
                 # the snapshot holds the positions; a failed commit only delays the group's view
                 log.warning("offset commit failed (positions are safe in the snapshot): %s", exc)
@@ -346,49 +514,43 @@ class KafkaSource:
     def poll(self, timeout: float) -> SourceChunk | None:
         from confluent_kafka import KafkaError
 
-        if not self._assigned:
+        if not self._assigned or self._prefetch is None:
             time.sleep(min(timeout, 0.05))
             return None
-        messages = self._consumer.consume(num_messages=self.batch_records, timeout=timeout)
-        failed = [m for m in messages if m.error() is not None]
-        good = [m for m in messages if m.error() is None] if failed else messages
-        if good:
-            self._advance(good)
-        for msg in failed:
-            err = msg.error()
-            if err.code() == KafkaError._PARTITION_EOF:
-                key = (msg.topic(), msg.partition())
+        fetched = self._prefetch.get(timeout)
+        if fetched is None:
+            return None
+        for key, offset in fetched.last.items():
+            self._read.add(key)
+            self._next[key] = offset + 1
+            self._eof.discard(key)
+        for code, key, offset, text, fatal in fetched.events:
+            if code == KafkaError._PARTITION_EOF:
                 if key not in self._read:
                     # nothing read since assignment (empty, or emptied by retention): start at its end
-                    self._next[key] = max(self._next.get(key, 0), msg.offset())
+                    self._next[key] = max(self._next.get(key, 0), offset)
                 # the event carries the end offset: at the end only if nothing came after it
-                if self._next.get(key, 0) >= msg.offset():
+                if self._next.get(key, 0) >= offset:
                     self._eof.add(key)
-            elif err.fatal():
-                raise RuntimeError(f"Kafka consumer failed: {err.str()}")
+            elif fatal:
+                raise RuntimeError(f"Kafka consumer failed: {text}")
             else:
-                log.warning("Kafka: %s", err.str())
-        return decode_messages(good, self.limits) if good else None
-
-    def _advance(self, good: list) -> None:
-        """Next offsets from the last message of each partition (scanning from the end)."""
-        seen: set[tuple[str, int]] = set()
-        for msg in reversed(good):
-            key = (msg.topic(), msg.partition())
-            if key not in seen:
-                seen.add(key)
-                self._read.add(key)
-                self._next[key] = msg.offset() + 1
-                self._eof.discard(key)
-                if len(seen) == len(self._assigned):
-                    break
+                log.warning("Kafka: %s", text)
+        return fetched.chunk
 
     def at_end(self) -> bool:
         return bool(self._assigned) and self._assigned <= self._eof
 
+    def _on_consumer(self, fn):
+        """``fn(consumer)`` on the thread that owns the consumer now."""
+        return self._prefetch.call(fn) if self._prefetch is not None else fn(self._consumer)
+
     def lag(self) -> dict[str, int]:
         from confluent_kafka import TopicPartition
 
+        if self._prefetch is not None:
+            return {f"{t}/{p}": max(high - self._next.get((t, p), 0), 0)
+                    for (t, p), high in sorted(self._prefetch.high.items())}
         out = {}
         for key in sorted(self._assigned):
             try:
@@ -400,6 +562,7 @@ class KafkaSource:
         return out
 
     def close(self) -> None:
+        self._stop_prefetch()
         try:
             self._consumer.close()
         except RuntimeError:

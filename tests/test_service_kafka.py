@@ -260,3 +260,43 @@ def test_a_standby_in_the_same_group_takes_over_without_loss(kafka_broker, tmp_p
     assert "now owns the graph" in text and f"resumed from snap-{handed['sequence']:08d}" in text
     manifest = check_snapshot_against(stream, newest_snapshot(root), TOLERANCE)
     assert manifest["events_applied"] + manifest["events_rejected"] == len(stream.records)
+
+
+def test_prefetched_batches_move_no_position_until_taken(kafka_broker) -> None:
+    """The fetch thread reads ahead; positions move only with the batches the service takes.
+
+    After a seek (as on a take-over) what was read ahead is dropped and read again.
+    """
+    from stream.events import Limits
+    from stream.sources import KafkaSource
+
+    topic = _topic(kafka_broker, partitions=1)
+    records = [(None, json.dumps({"op": "insert", "src": f"a{i}", "dst": "b"}).encode()) for i in range(50)]
+    _produce(kafka_broker.bootstrap, topic, records)
+    source = KafkaSource(f"kafka://{kafka_broker.bootstrap}/{topic}", f"g-{topic}", {}, Limits(), batch_records=10)
+    try:
+        source.seek({})
+        time.sleep(2.0)  # the thread fills its queue meanwhile
+        assert source.positions() == {"kafka": {topic: {"0": 0}}}
+        first = None
+        while first is None:
+            first = source.poll(5.0)
+        assert len(first.parsed.batch) == 10
+        assert source.positions() == {"kafka": {topic: {"0": 10}}}
+        source.seek({"kafka": {topic: {"0": 5}}})
+        again = None
+        while again is None:
+            again = source.poll(5.0)
+        assert again.parsed.batch.src[0].as_py() == "a5"  # read again from the seek, not from the read-ahead
+        taken = 5 + len(again.parsed.batch)
+        while not source.at_end():
+            chunk = source.poll(1.0)
+            taken += len(chunk.parsed.batch) if chunk is not None else 0
+        assert taken == 50
+        assert source.positions() == {"kafka": {topic: {"0": 50}}}
+        deadline = time.monotonic() + 10
+        while not source.lag() and time.monotonic() < deadline:
+            time.sleep(0.1)  # the thread notes the cached high watermark after its next fetch
+        assert source.lag() == {f"{topic}/0": 0}
+    finally:
+        source.close()
