@@ -35,7 +35,8 @@ def _positive(value) -> bool:
 
 
 def test_headline_keys_are_finite_and_positive(report: dict) -> None:
-    for key in ("speedup_vs_warm_start", "events_per_second", "events_per_second_apply_only"):
+    for key in ("speedup_vs_warm_start", "events_per_second", "events_per_second_apply_only",
+                "events_per_second_backlog_schedule"):
         assert _positive(report[key]), (key, report[key])
     assert report["end_to_end_events_per_second"] is None
     assert report["end_to_end"]["skipped"]
@@ -67,6 +68,8 @@ def test_other_sections_report_positive_figures(report: dict) -> None:
     for key in ("load_seconds", "resolve_seconds", "bytes_per_edge", "peak_rss_bytes_after_load"):
         assert _positive(load[key]), key
     assert report["throughput"]["certified_bound_after"] <= TOLERANCE
+    assert report["backlog"]["certified_bound_after"] <= TOLERANCE
+    assert report["backlog"]["settles"] >= 1
     assert _positive(report["snapshot"]["write_seconds"]) and _positive(report["snapshot"]["load_seconds"])
     assert report["snapshot"]["round_trip_same_size"]
     for fmt in ("jsonl", "parquet"):
