@@ -247,22 +247,27 @@ class Engine:
         """Push every profile until its certified bound is at most the tolerance."""
         tol = self.tolerance if tolerance is None else float(tolerance)
         total = SettleStats()
+        n = self.n_nodes
         for k in range(len(self.profiles)):
-            if self._seed_error[k] > SEED_ROUNDING_SHARE * tol * float(self.S[k, : self.n_nodes].sum()):
+            if self._seed_error[k] > 0.0 and \
+                    self._seed_error[k] > SEED_ROUNDING_SHARE * tol * float(self.S[k, :n].sum()):
                 # seed updates may have rounded the residual beyond a sliver of the budget
                 self._recompute_profile_residual(k)
-            total.add(self._settle_profile(k, tol))
-            if self.S[k, : self.n_nodes].any() and self.P[k, : self.n_nodes].sum() <= 0.0:
+            stats, s_p = self._settle_profile(k, tol)
+            total.add(stats)
+            # (the running sum s_p is exact enough to rule the case out when it is not small)
+            if s_p < 1.0 and self.S[k, :n].any() and float(self.P[k, :n].sum()) <= 0.0:
                 # the running residual lost the teleport mass to cancellation (a seed removed and
                 # re-added with weights far apart): rebuild it exactly and settle once more
                 self._recompute_profile_residual(k)
-                total.add(self._settle_profile(k, tol))
+                total.add(self._settle_profile(k, tol)[0])
         return total
 
-    def _settle_profile(self, k: int, tol: float) -> SettleStats:
+    def _settle_profile(self, k: int, tol: float) -> tuple[SettleStats, float]:
+        """Settle profile ``k``; return the work done and the sum of its estimate."""
         g = self.graph.arrays
         stats = np.zeros(5, dtype=np.int64)
-        kernels.settle_profile(
+        _, s_p, _ = kernels.settle_profile(
             k, tol, self.n_nodes, self.n_edges,
             g.head, g.out_weight, g.out_degree, g.src, g.dst, g.weight, g.next,
             int(g.counters[0]),
@@ -271,12 +276,11 @@ class Engine:
             self._queue, self._in_queue, self._tmp, self._spill, self.graph.unit_weights,
             SWEEP_SHARE, THETA_STEP, stats,
         )
-        self._compact(k, tol)
-        return SettleStats(*(int(x) for x in stats))
+        self._compact(k, tol, float(s_p))
+        return SettleStats(*(int(x) for x in stats)), float(s_p)
 
-    def _compact(self, k: int, tol: float) -> None:
+    def _compact(self, k: int, tol: float, s_p: float) -> None:
         """Shorten the active list; park tiny residuals within a share of the error budget."""
-        s_p = float(self.P[k, : self.n_nodes].sum())
         budget = PARK_SHARE * tol * max(s_p, 0.0) / (2.0 + tol)
         each = kernels.park_threshold(k, self.R, self._active, self._n_active, budget - self._parked[k])
         kernels.compact_active(k, self.R, self._active, self._n_active, self._in_active, self._parked,

@@ -26,6 +26,8 @@ References
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 from numba import njit, prange
 
@@ -537,17 +539,18 @@ def exact_residual(k, n, P, S, e_src, e_dst, e_w, top, unit, out_weight, a, d, t
 def park_threshold(k, R, active, n_active, budget):
     """Largest power of two ``t`` such that the residuals ``0 < |r| < t`` sum to at most ``budget``.
 
-    One pass with a histogram of binary exponents, instead of a sort.
+    One pass with a histogram of binary exponents (``frexp``, no logarithm),
+    instead of a sort. Bin ``b`` holds ``2**(b - 1075) <= |r| < 2**(b - 1074)``.
     """
     mass = np.zeros(2100)
     for i in range(n_active[k]):
         r = abs(R[k, active[k, i]])
         if r > 0.0:
-            mass[int(np.log2(r)) + 1074] += r
+            mass[math.frexp(r)[1] + 1074] += r
     total = 0.0
     for b in range(mass.shape[0]):
         if total + mass[b] > budget:
-            return 2.0 ** (b - 1074)
+            return 2.0 ** (b - 1075)
         total += mass[b]
     return np.inf
 
