@@ -19,6 +19,7 @@ snapshot, so it too holds each reject once.
 
 from __future__ import annotations
 
+import gc
 import json
 import logging
 import os
@@ -38,6 +39,10 @@ from stream.snapshots import Counters, SnapshotError, load_latest, prune, write_
 from stream.sources import Source, SourceChunk, open_source
 
 log = logging.getLogger("ranktide.service")
+
+#: Allocations between young-generation collections while the service runs
+#: (Python's default is 700).
+GC_YOUNG_THRESHOLD = 100_000
 
 
 class RejectsSink:
@@ -226,6 +231,11 @@ class Service:
         feed = ScoreFeed(cfg.score_topic, bootstrap, cfg.kafka, cfg.score_threshold, cfg.score_interval) \
             if cfg.score_topic and bootstrap else None
         server = start_metrics_server(cfg.metrics, self.metrics) if cfg.metrics else None
+        thresholds = gc.get_threshold()
+        # the Kafka client makes one object per message: with the default thresholds the
+        # collector runs hundreds of times per batch over objects that all live on
+        gc.freeze()
+        gc.set_threshold(GC_YOUNG_THRESHOLD, *thresholds[1:])
         try:
             while not self._stop.is_set():
                 if lock is not None and not self._follow_lock(lock, rejects):
@@ -256,6 +266,8 @@ class Service:
             log.error("cannot write %s: %s", exc.filename or "output", exc.strerror or exc)
             return 3
         finally:
+            gc.set_threshold(*thresholds)
+            gc.unfreeze()
             self._closing = True
             if lock is not None:
                 lock.close()
