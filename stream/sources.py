@@ -20,7 +20,7 @@ import threading
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Protocol
+from typing import Callable, Protocol
 
 import numpy as np
 import pyarrow as pa
@@ -259,7 +259,7 @@ class Fetched:
         The decoded messages (None when the batch held only events).
     last : dict
         (topic, partition) -> offset of the last message of the batch.
-    events : list of (code, key, offset, text)
+    events : list of (code, key, offset, text, fatal)
         End-of-partition and error events in their order.
     """
 
@@ -295,7 +295,7 @@ def fetch_batch(consumer, batch_records: int, limits: Limits, timeout: float, pa
 class _Call:
     """A request for the fetch thread to run ``fn(consumer)`` (it owns the consumer)."""
 
-    fn: object
+    fn: Callable[[object], object]
     done: threading.Event = field(default_factory=threading.Event)
     result: object = None
     error: BaseException | None = None

@@ -84,6 +84,24 @@ def test_snapshot_every_leaves_a_series_and_replays_are_deterministic(random_log
         assert mx == my
 
 
+def test_scores_do_not_depend_on_the_thread_count(random_log, tmp_path: Path) -> None:
+    """Parallel sweeps sum in fixed chunks: one thread and two give the same files."""
+    import os
+
+    log, _ = random_log
+    files = {}
+    for threads in ("1", "2"):
+        out = tmp_path / f"threads-{threads}"
+        done = subprocess.run([sys.executable, "-m", "stream.cli", "--log-level", "WARNING", "replay", str(log),
+                               "--out", str(out), "--micro-batch", "500"],
+                              capture_output=True, text=True, timeout=300,
+                              env={**os.environ, "NUMBA_NUM_THREADS": threads})
+        assert done.returncode == 0, done.stderr[-2000:]
+        snap = max(out.glob("snap-*"))
+        files[threads] = {name: (snap / name).read_bytes() for name in ("scores.parquet", "edges.parquet")}
+    assert files["1"] == files["2"]
+
+
 def test_until_a_time_and_pace(tmp_path: Path) -> None:
     stream = Stream()
     stream.extend(np.random.default_rng(3), 400, bad_share=0.0)
