@@ -395,7 +395,7 @@ def settle_profile(
     k, tol, n, m,
     head, out_weight, out_degree, e_src, e_dst, e_w, e_next, top,
     P, R, a, d, active, n_active, in_active, parked, queue, in_queue, tmp, spill, unit, sweep_share, theta_step,
-    stats,
+    push_limit, stats,
 ):
     """Push profile ``k`` until its certified bound is at most ``tol``.
 
@@ -406,7 +406,8 @@ def settle_profile(
     than ``sweep_share * m`` out-edges, a global sweep is cheaper per unit of
     residual removed than scattered pushes, and the kernel switches to sweeps
     [3]. Forward push alone has bad worst cases on directed graphs; the switch
-    bounds each phase's cost by a constant number of sweeps.
+    bounds each phase's cost by a constant number of sweeps. A residual more
+    than ``push_limit`` times the error budget goes to sweeps at once.
 
     ``stats`` accumulates: [0] pushes, [1] edges touched by pushes,
     [2] sweeps, [3] edges touched by sweeps, [4] local phases.
@@ -427,7 +428,10 @@ def settle_profile(
         if ratio > theta:
             theta = ratio
     theta *= 0.5
-    sweeping = False
+    # far above the budget the residual must reach every node anyway: pushes first would only
+    # break up the pairing of its positive and negative parts that lets sweeps cancel them
+    budget = tol * s_p / (1.0 + abs_p / s_p + tol) if s_p > 0.0 else 0.0
+    sweeping = s_p > 0.0 and rho > push_limit * budget
     rounds = 0
     stalled = 0
     while not _done(rho, s_p, abs_p, tol):
