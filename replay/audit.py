@@ -21,7 +21,6 @@ import sys
 from dataclasses import asdict, dataclass
 from pathlib import Path
 
-import numpy as np
 
 from solver import GLOBAL
 from solver.metrics import (

@@ -32,7 +32,7 @@ from pathlib import Path
 import numpy as np
 
 from solver import Ranker
-from stream.config import ServiceConfig, redact
+from stream.config import ServiceConfig
 from stream.events import Limits
 from stream.metrics import Metrics, start_metrics_server
 from stream.snapshots import Counters, SnapshotError, load_latest, prune, write_snapshot
