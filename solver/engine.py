@@ -336,21 +336,41 @@ class Engine:
         estimates : profile name -> estimate ``p`` (length ``n_nodes``)
         teleports : profile name -> teleport ``s`` for personalizations; the
             global profile's teleport is 1 everywhere.
+
+        Raises
+        ------
+        ValueError
+            When an edge is listed twice, a weight is out of range or an
+            endpoint is not a node.
         """
         if self.n_nodes or self.n_edges:
             raise RuntimeError("restore() needs an empty engine")
         for name in estimates:
             self.add_profile(name)
-        src, dst, w = edges
-        self.ensure_nodes(n_nodes, int(src.size))
-        # with p = 0 the repair of each insert is a no-op, so this is a plain bulk load
-        self.apply(np.zeros(src.size, np.int8), src, dst, w)
+        self.ensure_nodes(n_nodes, int(edges[0].size))
+        self._load_edges(*edges)
         for name, p in estimates.items():
             self.P[self.profile_index(name), :n_nodes] = p
         for name, s in teleports.items():
             if name != GLOBAL:
                 self.S[self.profile_index(name), :n_nodes] = s
         self.recompute_residual()
+
+    def _load_edges(self, src: np.ndarray, dst: np.ndarray, weight: np.ndarray) -> None:
+        """Bulk-load distinct edges into the empty graph (``p`` is still 0: nothing to repair)."""
+        src = np.ascontiguousarray(src, dtype=np.int32)
+        dst = np.ascontiguousarray(dst, dtype=np.int32)
+        weight = np.ascontiguousarray(weight, dtype=np.float64)
+        if not src.size:
+            return
+        _check_weights(np.zeros(src.size, np.int8), weight)
+        if min(int(src.min()), int(dst.min())) < 0 or max(int(src.max()), int(dst.max())) >= self.n_nodes:
+            raise ValueError(f"edge endpoints must lie in 0 .. {self.n_nodes - 1}")
+        g = self.graph.arrays
+        twice = kernels.load_edges(src, dst, weight, g.head, g.out_weight, g.out_degree, g.src, g.dst,
+                                   g.weight, g.next, g.prev, g.table, g.counters)
+        if twice >= 0:
+            raise ValueError(f"edge {twice} ({int(src[twice])} -> {int(dst[twice])}) is listed twice")
 
     def _reset_active(self, k: int) -> None:
         n = self.n_nodes

@@ -321,6 +321,31 @@ def apply_events(
     return noop
 
 
+@njit(cache=True, nogil=True)
+def load_edges(src, dst, wt, head, out_weight, out_degree, e_src, e_dst, e_w, e_next, e_prev, table, counters):
+    """Bulk-load distinct edges into an empty graph (slots ``0 .. m-1`` in order).
+
+    The state equals that of inserting them one by one with
+    :func:`apply_events` while every estimate is 0 (no repair is due), at a
+    third of the cost. Returns -1, or the index of the first edge whose pair
+    came before (the caller reports it; the graph is then incomplete).
+    """
+    shift = counters[3]
+    for i in range(src.shape[0]):
+        u = src[i]
+        v = dst[i]
+        if find_cell(table, shift, e_src, e_dst, u, v) >= 0:
+            return i
+        e = _alloc_slot(counters, e_src, e_next)
+        _link(head, e_src, e_dst, e_w, e_next, e_prev, e, u, v, wt[i])
+        _hash_insert(table, shift, u, v, e)
+        out_degree[u] += 1
+        out_weight[u] += wt[i]
+        counters[2] += 1
+        counters[4] += int(wt[i] != 1.0)
+    return -1
+
+
 # ---------------------------------------------------------------- scheduling
 
 

@@ -316,7 +316,10 @@ def load_snapshot(path: Path, check: bool = True) -> Snapshot:
     dst = ranker.ids.intern(edges["dst"].combine_chunks())
     if len(ranker.ids) != n:
         raise SnapshotError(f"{path}: edges.parquet names nodes missing from scores.parquet")
-    ranker.engine.restore(n, (src, dst, edges["weight"].to_numpy()), estimates, teleports)
+    try:
+        ranker.engine.restore(n, (src, dst, edges["weight"].to_numpy()), estimates, teleports)
+    except ValueError as exc:
+        raise SnapshotError(f"{path}: edges.parquet: {exc}") from exc
     counters = Counters(manifest["events_applied"], manifest["events_noop"], manifest["events_rejected"])
     return Snapshot(ranker, manifest, path, counters)
 

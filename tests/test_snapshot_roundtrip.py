@@ -125,3 +125,18 @@ def test_corrupted_newest_snapshot_is_skipped_with_a_warning(tmp_path: Path, cap
     warnings = [r for r in caplog.records if r.levelno == logging.WARNING and r.name == "ranktide.snapshots"]
     assert len(warnings) == 1
     assert newer.name in warnings[0].getMessage() and "scores.parquet" in warnings[0].getMessage()
+
+
+def test_an_edge_listed_twice_is_a_clear_error(tmp_path: Path) -> None:
+    """A snapshot whose edges file repeats a pair (rewritten, checksums skipped) is refused with the pair."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    from stream.snapshots import SnapshotError
+
+    ranker, _ = seeded_ranker(6)
+    snap = write_snapshot(tmp_path, ranker, Counters(), {})
+    edges = pq.read_table(snap / "edges.parquet")
+    pq.write_table(pa.concat_tables([edges, edges.slice(3, 1)]), snap / "edges.parquet")
+    with pytest.raises(SnapshotError, match=r"edges\.parquet: edge \d+ .* is listed twice"):
+        load_snapshot(snap, check=False)
