@@ -280,6 +280,25 @@ def verify(path: Path, manifest: dict) -> None:
             raise SnapshotError(f"{path}: {fname} fails its sha256 checksum")
 
 
+def _intern_column(ids: NodeIds, column: pa.ChunkedArray) -> np.ndarray:
+    """Ids of a dictionary-encoded string column: each distinct dictionary is interned once.
+
+    The chunks of one Parquet row group share its dictionary.
+    """
+    parts = []
+    dictionary, mapping = None, None
+    for chunk in column.chunks:
+        if pa.types.is_dictionary(chunk.type):
+            if chunk.null_count:
+                raise SnapshotError("node ids must not be null")
+            if dictionary is None or not chunk.dictionary.equals(dictionary):
+                dictionary, mapping = chunk.dictionary, ids.intern(chunk.dictionary)
+            parts.append(mapping[chunk.indices.to_numpy()])
+        else:
+            parts.append(ids.intern(chunk))
+    return np.concatenate(parts) if parts else np.zeros(0, np.int32)
+
+
 def load_snapshot(path: Path, check: bool = True) -> Snapshot:
     """Rebuild a ranker from snapshot folder ``path`` (residual recomputed exactly)."""
     path = Path(path)
@@ -290,7 +309,7 @@ def load_snapshot(path: Path, check: bool = True) -> Snapshot:
         verify(path, manifest)
     try:
         scores = pq.read_table(path / "scores.parquet")
-        edges = pq.read_table(path / "edges.parquet")
+        edges = pq.read_table(path / "edges.parquet", read_dictionary=["src", "dst"])
         seeds = pq.read_table(path / "seeds.parquet")
     except (OSError, pa.ArrowException) as exc:
         raise SnapshotError(f"{path}: unreadable Parquet file: {exc}") from exc
@@ -312,8 +331,8 @@ def load_snapshot(path: Path, check: bool = True) -> Snapshot:
         teleports[name] = s
     if len(ranker.ids) != n:
         raise SnapshotError(f"{path}: scores or seeds name nodes missing from the global profile")
-    src = ranker.ids.intern(edges["src"].combine_chunks())
-    dst = ranker.ids.intern(edges["dst"].combine_chunks())
+    src = _intern_column(ranker.ids, edges["src"])
+    dst = _intern_column(ranker.ids, edges["dst"])
     if len(ranker.ids) != n:
         raise SnapshotError(f"{path}: edges.parquet names nodes missing from scores.parquet")
     try:
