@@ -370,7 +370,8 @@ def scatter_slots(out, spill, coef, n, e_src, e_dst, e_w, top, unit):
     The slots are cut into :data:`SWEEP_CHUNKS` fixed chunks: chunk 0 adds into
     ``out``, chunk ``c > 0`` into ``spill[c - 1]``, and the spills are added
     afterwards in order. The chunk count, not the thread count, fixes the
-    order of every floating-point sum, so results are the same on any machine.
+    order of every floating-point sum, so results do not depend on how many
+    threads run.
     With ``unit`` (every weight is 1) the weights are not read: the scatter is
     bound by memory traffic, and this drops a third of it.
     """
