@@ -288,14 +288,11 @@ def _intern_column(ids: NodeIds, column: pa.ChunkedArray) -> np.ndarray:
     parts = []
     dictionary, mapping = None, None
     for chunk in column.chunks:
-        if pa.types.is_dictionary(chunk.type):
-            if chunk.null_count:
-                raise SnapshotError("node ids must not be null")
-            if dictionary is None or not chunk.dictionary.equals(dictionary):
-                dictionary, mapping = chunk.dictionary, ids.intern(chunk.dictionary)
-            parts.append(mapping[chunk.indices.to_numpy()])
-        else:
-            parts.append(ids.intern(chunk))
+        if chunk.null_count:
+            raise SnapshotError("node ids must not be null")
+        if dictionary is None or not chunk.dictionary.equals(dictionary):
+            dictionary, mapping = chunk.dictionary, ids.intern(chunk.dictionary)
+        parts.append(mapping[chunk.indices.to_numpy()])
     return np.concatenate(parts) if parts else np.zeros(0, np.int32)
 
 

@@ -546,20 +546,11 @@ class KafkaSource:
         return self._prefetch.call(fn) if self._prefetch is not None else fn(self._consumer)
 
     def lag(self) -> dict[str, int]:
-        from confluent_kafka import TopicPartition
-
-        if self._prefetch is not None:
-            return {f"{t}/{p}": max(high - self._next.get((t, p), 0), 0)
-                    for (t, p), high in sorted(self._prefetch.high.items())}
-        out = {}
-        for key in sorted(self._assigned):
-            try:
-                _, high = self._consumer.get_watermark_offsets(TopicPartition(*key), cached=True)
-            except Exception:  # noqa: BLE001 - a lag figure is best effort
-                continue
-            if high is not None and high >= 0:
-                out[f"{key[0]}/{key[1]}"] = max(high - self._next.get(key, 0), 0)
-        return out
+        """Messages behind the high watermark, per partition (the fetch thread keeps the watermarks)."""
+        if self._prefetch is None:  # nothing assigned
+            return {}
+        return {f"{t}/{p}": max(high - self._next.get((t, p), 0), 0)
+                for (t, p), high in sorted(self._prefetch.high.items())}
 
     def close(self) -> None:
         self._stop_prefetch()
