@@ -22,8 +22,8 @@ from dataclasses import asdict, dataclass
 from pathlib import Path
 
 
-from solver import GLOBAL
-from solver.metrics import (
+from ranktide.solver import GLOBAL
+from ranktide.solver.metrics import (
     certified_bound,
     kendall_tau_top_k,
     l1_error,
@@ -31,7 +31,7 @@ from solver.metrics import (
     linf_error,
     top_k_overlap,
 )
-from stream.snapshots import SnapshotError, load_snapshot, snapshot_dirs
+from ranktide.stream.snapshots import SnapshotError, load_snapshot, snapshot_dirs
 
 #: Certified error of the exact recompute itself; added to the bound when comparing.
 EXACT_TOLERANCE = 1e-12

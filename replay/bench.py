@@ -47,10 +47,10 @@ from typing import Callable
 
 import numpy as np
 
-from replay.graphs import PowerLawSampler, bundled_real_graph, pair_keys, power_law_digraph
-from solver import OP_DELETE, OP_INSERT, OP_SEED, Engine, SettleStats
-from solver.exact import solve, transition_transpose
-from solver.metrics import l1_error
+from ranktide.replay.graphs import PowerLawSampler, bundled_real_graph, pair_keys, power_law_digraph
+from ranktide.solver import OP_DELETE, OP_INSERT, OP_SEED, Engine, SettleStats
+from ranktide.solver.exact import solve, transition_transpose
+from ranktide.solver.metrics import l1_error
 
 #: Graph sizes (nodes, edges). ``tiny`` is for smoke tests.
 SIZES = {
@@ -676,8 +676,8 @@ def measure_profiles(tr: Tracker, count: int, size: int, repeats: int) -> dict:
 
 def ranker_over(eng: Engine):
     """A Ranker over ``eng`` whose node names are ``str(i)``."""
-    from solver import Ranker
-    from solver.ids import NodeIds
+    from ranktide.solver import Ranker
+    from ranktide.solver.ids import NodeIds
 
     ranker = Ranker(DAMPING, TOLERANCE)
     ranker.engine = eng
@@ -691,7 +691,7 @@ def folder_bytes(path: Path) -> int:
 
 def measure_snapshot(eng: Engine, root: Path) -> tuple[dict, Path]:
     """Write a snapshot of ``eng`` under ``root`` and load it back; return figures and its folder."""
-    from stream.snapshots import Counters, load_snapshot, write_snapshot
+    from ranktide.stream.snapshots import Counters, load_snapshot, write_snapshot
 
     ranker = ranker_over(eng)
     path, write_s = _timed(lambda: write_snapshot(root, ranker, Counters(), {}))
@@ -739,14 +739,14 @@ def write_logs(src: np.ndarray, dst: np.ndarray, folder: Path) -> tuple[Path, Pa
 
 def read_only(path: Path) -> int:
     """Read and parse a log, discarding the events; return how many were valid."""
-    from replay.logs import read_log
+    from ranktide.replay.logs import read_log
 
     return sum(len(chunk.parsed.batch) for chunk in read_log(path))
 
 
 def measure_replay(src: np.ndarray, dst: np.ndarray, folder: Path) -> dict:
     """Replay floor: reading + parsing alone against ``replay_log`` for JSONL and Parquet."""
-    from replay.replay import ReplayOptions, replay_log
+    from ranktide.replay.replay import ReplayOptions, replay_log
 
     jsonl, parquet = write_logs(src, dst, folder)
     out: dict = {"events": int(src.size)}
@@ -832,9 +832,9 @@ def produce(bootstrap: str, topic: str, values: list[bytes], headers: list | Non
 
 def timed_service(source: str, out: Path) -> dict:
     """Run the service to the end of its source and time it, with restore and snapshots apart."""
-    from stream.config import ServiceConfig
-    from stream.service import Service
-    from stream.snapshots import load_latest
+    from ranktide.stream.config import ServiceConfig
+    from ranktide.stream.service import Service
+    from ranktide.stream.snapshots import load_latest
 
     spent = {"restore": 0.0, "snapshot": 0.0, "owner_wait": 0.0}
 
@@ -869,7 +869,7 @@ def timed_service(source: str, out: Path) -> dict:
 
 def e2e_run(kafka, kind: str, values: list[bytes], events: int, snapshot: Path, folder: Path) -> dict:
     """Produce (untimed), then time the service from the snapshot to the end of the topic."""
-    from stream.sources import ARROW_CONTENT_TYPE
+    from ranktide.stream.sources import ARROW_CONTENT_TYPE
 
     topic = f"bench-{kind}"
     kafka.create_topic(topic, partitions=3)
@@ -899,7 +899,7 @@ def measure_e2e(edges: EdgeSet, sampler: PowerLawSampler, count: int, snapshot: 
                 folder: Path, rng: np.random.Generator) -> dict:
     """The service end to end on a local broker, JSON messages then Arrow IPC batches."""
     try:
-        from stream.broker import LocalKafka
+        from ranktide.stream.broker import LocalKafka
     except ImportError:
         return {"skipped": "no broker"}
     batch = e2e_events(edges, sampler, count, rng)
@@ -977,7 +977,7 @@ def headline(rows: list[dict]) -> dict:
 
 def run_all(args: argparse.Namespace, folder: Path) -> dict:
     """Every measurement of one run, as one report."""
-    from stream.config import ServiceConfig
+    from ranktide.stream.config import ServiceConfig
 
     report: dict = {"machine": machine_info(), "settings": {
         "size": args.size, "batches": args.batches, "repeats": args.repeats, "seed": args.seed,

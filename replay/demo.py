@@ -18,11 +18,11 @@ import numpy as np
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
-from replay.audit import audit_snapshot, plot_series
-from replay.scenario import write_scenario
-from stream.config import ServiceConfig
-from stream.service import Service
-from stream.snapshots import snapshot_dirs
+from ranktide.replay.audit import audit_snapshot, plot_series
+from ranktide.replay.scenario import write_scenario
+from ranktide.stream.config import ServiceConfig
+from ranktide.stream.service import Service
+from ranktide.stream.snapshots import snapshot_dirs
 
 
 def run_demo(out: Path, snapshot_events: int = 4000) -> int:

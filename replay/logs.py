@@ -23,7 +23,7 @@ import pyarrow.compute as pc
 import pyarrow.csv as pcsv
 import pyarrow.parquet as pq
 
-from stream.events import FIELDS, Limits, Parsed, ts_millis, parse_json_records, validate_table
+from ranktide.stream.events import FIELDS, Limits, Parsed, ts_millis, parse_json_records, validate_table
 
 CHUNK_BYTES = 8 << 20
 
@@ -83,7 +83,7 @@ class LogChunk:
 
 
 def _take(batch, rows: np.ndarray):
-    from solver import EventBatch
+    from ranktide.solver import EventBatch
 
     idx = pa.array(rows)
     return EventBatch(batch.op[rows], batch.src.take(idx), batch.dst.take(idx), batch.weight[rows], batch.ts[rows])
@@ -272,7 +272,7 @@ def _convert_cells(cells: list, kind) -> tuple[list, list[int]]:
 
 def _recorded_chunk(table: pa.Table, first_row: int, limits: Limits) -> LogChunk:
     """Rows of a recording (``ranktide record``): message values decoded as the service does."""
-    from stream.sources import ARROW_CONTENT_TYPE, decode_values
+    from ranktide.stream.sources import ARROW_CONTENT_TYPE, decode_values
 
     values = table["value"].to_pylist()
     kinds = table["content_type"].to_pylist() if "content_type" in table.column_names else [None] * len(values)

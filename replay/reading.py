@@ -11,7 +11,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
-from stream.snapshots import SnapshotError, read_manifest, snapshot_dirs
+from ranktide.stream.snapshots import SnapshotError, read_manifest, snapshot_dirs
 
 
 def newest(root: Path) -> Path:

@@ -25,7 +25,7 @@ from pathlib import Path
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from stream.sources import ARROW_CONTENT_TYPE, _is_arrow, parse_kafka_url
+from ranktide.stream.sources import ARROW_CONTENT_TYPE, _is_arrow, parse_kafka_url
 
 log = logging.getLogger("ranktide.record")
 

@@ -8,11 +8,11 @@ import time
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from solver import EventBatch, Ranker
-from stream.events import Limits
+from ranktide.solver import EventBatch, Ranker
+from ranktide.stream.events import Limits
 import numpy as np
 
-from stream.snapshots import Counters, load_snapshot, write_snapshot
+from ranktide.stream.snapshots import Counters, load_snapshot, write_snapshot
 
 from .logs import LogChunk, LogError, read_log, row_count_hint
 

@@ -3,7 +3,7 @@
 :class:`Ranker` is what the service, the replay and a user embedding
 ranktide call::
 
-    from solver import EventBatch, Ranker
+    from ranktide.solver import EventBatch, Ranker
 
     ranker = Ranker(damping=0.85, tolerance=1e-6)
     ranker.apply(EventBatch.edges(["a", "b"], ["b", "c"]))   # inserts

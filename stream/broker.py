@@ -14,8 +14,8 @@ Examples
 
 From a shell::
 
-    python -m stream.broker fetch
-    python -m stream.broker start --port 9092 --data ./kafka-data
+    python -m ranktide.stream.broker fetch
+    python -m ranktide.stream.broker start --port 9092 --data ./kafka-data
 """
 
 from __future__ import annotations
@@ -651,7 +651,7 @@ def _topic_spec(text: str) -> tuple[str, int]:
 
 
 def _parser(prog: str) -> argparse.ArgumentParser:
-    """Build the argument parser for ``ranktide broker`` (or ``python -m stream.broker``)."""
+    """Build the argument parser for ``ranktide broker`` (or ``python -m ranktide.stream.broker``)."""
     parser = argparse.ArgumentParser(
         prog=prog,
         description=(f"Run a local single-node Apache Kafka {KAFKA_VERSION} broker "
@@ -707,8 +707,8 @@ def _serve(args: argparse.Namespace) -> int:
         signal.signal(signal.SIGTERM, previous)
 
 
-def main(argv: list[str] | None = None, prog: str = "python -m stream.broker") -> int:
-    """Entry point of ``python -m stream.broker`` and ``ranktide broker``.
+def main(argv: list[str] | None = None, prog: str = "python -m ranktide.stream.broker") -> int:
+    """Entry point of ``python -m ranktide.stream.broker`` and ``ranktide broker``.
 
     Parameters
     ----------

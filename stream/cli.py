@@ -24,7 +24,7 @@ def _until(text: str) -> int | float:
     """A line/row number (digits) or an ISO-8601 time (returned in ms since the epoch)."""
     if text.isdigit():
         return int(text)
-    from stream.events import ts_millis
+    from ranktide.stream.events import ts_millis
 
     millis, reason = ts_millis(text)
     if reason:
@@ -70,9 +70,9 @@ def add_engine_options(p: argparse.ArgumentParser) -> None:
 
 
 def _cmd_replay(args: argparse.Namespace) -> int:
-    from replay.logs import LogError
-    from replay.replay import ReplayOptions, replay_log
-    from stream.snapshots import SnapshotError
+    from ranktide.replay.logs import LogError
+    from ranktide.replay.replay import ReplayOptions, replay_log
+    from ranktide.stream.snapshots import SnapshotError
 
     damping, tolerance = args.damping, args.tolerance
     if args.from_snapshot is not None and (damping is not None or tolerance is not None):
@@ -112,10 +112,10 @@ class _JsonFormatter(logging.Formatter):
 
 
 def _cmd_run(args: argparse.Namespace) -> int:
-    from replay.logs import LogError
-    from stream.config import ConfigError, load_config
-    from stream.service import Service
-    from stream.snapshots import SnapshotError
+    from ranktide.replay.logs import LogError
+    from ranktide.stream.config import ConfigError, load_config
+    from ranktide.stream.service import Service
+    from ranktide.stream.snapshots import SnapshotError
 
     overrides = {
         "source": args.source, "out": args.out, "group": args.group, "tolerance": args.tolerance,
@@ -146,7 +146,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
         print(f"ranktide run: error: {exc}", file=sys.stderr)
         return 2
     if code == 0 and not args.quiet:
-        from replay.reading import describe_newest
+        from ranktide.replay.reading import describe_newest
 
         describe_newest(Path(cfg.out))
     return code
@@ -154,7 +154,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
 
 def _embedded_default(args: argparse.Namespace) -> dict:
     """No source named: run the built-in scenario from a file source, to its end."""
-    from replay.scenario import write_scenario
+    from ranktide.replay.scenario import write_scenario
 
     out = Path(args.out or "ranktide-out")
     log_path = out / "scenario" / "events.jsonl"
@@ -165,43 +165,43 @@ def _embedded_default(args: argparse.Namespace) -> dict:
 
 
 def _cmd_status(args: argparse.Namespace) -> int:
-    from replay.reading import describe_newest
+    from ranktide.replay.reading import describe_newest
 
     return describe_newest(args.root, as_json=args.json)
 
 
 def _cmd_top(args: argparse.Namespace) -> int:
-    from replay.reading import print_top
+    from ranktide.replay.reading import print_top
 
     return print_top(args.root, args.k, args.profile, as_json=args.json)
 
 
 def _cmd_score(args: argparse.Namespace) -> int:
-    from replay.reading import print_scores
+    from ranktide.replay.reading import print_scores
 
     return print_scores(args.root, args.nodes, args.profile, as_json=args.json)
 
 
 def _cmd_record(args: argparse.Namespace) -> int:
-    from replay.record import run_record
+    from ranktide.replay.record import run_record
 
     return run_record(args)
 
 
 def _cmd_audit(args: argparse.Namespace) -> int:
-    from replay.audit import run_audit
+    from ranktide.replay.audit import run_audit
 
     return run_audit(args.root, args.snapshot, args.all, args.k, args.json, args.plot)
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:
-    from replay.demo import run_demo
+    from ranktide.replay.demo import run_demo
 
     return run_demo(args.out)
 
 
 def _cmd_bench(args: argparse.Namespace) -> int:
-    from replay.bench import run_bench
+    from ranktide.replay.bench import run_bench
 
     return run_bench(args)
 
@@ -326,7 +326,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("bench", help="measure the engine against recomputing (prints figures)",
                        description="Benchmarks that print figures measured side by side in one run.")
-    from replay.bench import add_bench_options
+    from ranktide.replay.bench import add_bench_options
 
     add_bench_options(p)
     p.set_defaults(func=_cmd_bench)
@@ -340,7 +340,7 @@ def main(argv: list[str] | None = None) -> int:
     argv = sys.argv[1:] if argv is None else argv
     if argv[:1] == ["broker"]:
         # everything after 'broker' belongs to the broker's own parser, --help included
-        from stream import broker
+        from ranktide.stream import broker
 
         return broker.main(argv[1:], prog="ranktide broker")
     parser = build_parser()

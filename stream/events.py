@@ -26,8 +26,8 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.json as pj
 
-from solver import GLOBAL, OP_DELETE, OP_INSERT, OP_SEED, EventBatch
-from solver.engine import MAX_WEIGHT, MIN_WEIGHT
+from ranktide.solver import GLOBAL, OP_DELETE, OP_INSERT, OP_SEED, EventBatch
+from ranktide.solver.engine import MAX_WEIGHT, MIN_WEIGHT
 
 OPS = {"insert": OP_INSERT, "delete": OP_DELETE, "seed": OP_SEED}
 FIELDS = ("op", "src", "dst", "weight", "ts", "profile", "node")

@@ -31,12 +31,12 @@ from pathlib import Path
 
 import numpy as np
 
-from solver import Ranker
-from stream.config import ServiceConfig
-from stream.events import Limits
-from stream.metrics import Metrics, start_metrics_server
-from stream.snapshots import Counters, SnapshotError, load_latest, prune, write_snapshot
-from stream.sources import Source, SourceChunk, open_source
+from ranktide.solver import Ranker
+from ranktide.stream.config import ServiceConfig
+from ranktide.stream.events import Limits
+from ranktide.stream.metrics import Metrics, start_metrics_server
+from ranktide.stream.snapshots import Counters, SnapshotError, load_latest, prune, write_snapshot
+from ranktide.stream.sources import Source, SourceChunk, open_source
 
 log = logging.getLogger("ranktide.service")
 
@@ -180,7 +180,7 @@ class Service:
         snap = load_latest(self.out)
         if snap is None:
             self.ranker = Ranker(damping=self.cfg.damping, tolerance=self.cfg.tolerance)
-            from replay.replay import seed_personalizations
+            from ranktide.replay.replay import seed_personalizations
 
             seed_personalizations(self.ranker, {k: Path(v) for k, v in self.cfg.personalizations.items()})
             self.counters = Counters()
@@ -221,7 +221,7 @@ class Service:
                                   cfg.file_chunk_bytes)
         lock = None
         if bootstrap:
-            from stream.sources import OwnerLock
+            from ranktide.stream.sources import OwnerLock
 
             lock = OwnerLock(bootstrap, cfg.group, cfg.owner_topic or f"{cfg.group}.owner", cfg.kafka,
                              on_lost=lambda: self._hand_over(rejects))

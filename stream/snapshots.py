@@ -36,8 +36,8 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
-from solver import GLOBAL, Ranker
-from solver.ids import NodeIds
+from ranktide.solver import GLOBAL, Ranker
+from ranktide.solver.ids import NodeIds
 
 FORMAT = 1
 _NAME = re.compile(r"^snap-(\d{8})$")

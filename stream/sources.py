@@ -25,8 +25,8 @@ from typing import Callable, Protocol
 import numpy as np
 import pyarrow as pa
 
-from replay.logs import LogError, read_log
-from stream.events import EventBatch, Limits, Parsed, parse_json_records, validate_table
+from ranktide.replay.logs import LogError, read_log
+from ranktide.stream.events import EventBatch, Limits, Parsed, parse_json_records, validate_table
 
 log = logging.getLogger("ranktide.sources")
 

@@ -7,7 +7,7 @@ from typing import Iterator
 
 import pytest
 
-from stream.broker import LocalKafka
+from ranktide.stream.broker import LocalKafka
 
 
 def _kafka_skipped() -> bool:

@@ -17,7 +17,7 @@ import pyarrow as pa
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
-from solver import GLOBAL, OP_DELETE, OP_INSERT, OP_SEED, EventBatch, Ranker
+from ranktide.solver import GLOBAL, OP_DELETE, OP_INSERT, OP_SEED, EventBatch, Ranker
 
 Edge = tuple[str, str]
 

@@ -109,7 +109,7 @@ def sigterm_and_check(proc: subprocess.Popen, stream: Stream, root: Path, tolera
 def ranktide(*args: str, env: dict | None = None, **kwargs) -> subprocess.Popen:
     """Start the ``ranktide`` command line as a child process."""
     full_env = {**os.environ, **(env or {})}
-    proc = subprocess.Popen([sys.executable, "-m", "stream.cli", *args], env=full_env,
+    proc = subprocess.Popen([sys.executable, "-m", "ranktide.stream.cli", *args], env=full_env,
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, **kwargs)
     CHILDREN.append(proc)
     return proc

@@ -23,7 +23,7 @@ REFERENCE_SLACK = 1e-10
 
 @pytest.fixture(scope="module")
 def report() -> dict:
-    cmd = [sys.executable, "-m", "stream.cli", "bench", "--size", "tiny", "--batches", "1,10,100",
+    cmd = [sys.executable, "-m", "ranktide.stream.cli", "bench", "--size", "tiny", "--batches", "1,10,100",
            "--repeats", "2", "--profiles", "1", "--json", "--skip-e2e"]
     done = subprocess.run(cmd, capture_output=True, text=True, timeout=900)
     assert done.returncode == 0, done.stderr[-3000:]

@@ -8,7 +8,7 @@ from collections.abc import Iterator
 import pytest
 from confluent_kafka import Consumer, KafkaException, Producer
 
-from stream.broker import LocalKafka
+from ranktide.stream.broker import LocalKafka
 
 pytestmark = pytest.mark.kafka
 

@@ -43,8 +43,8 @@ from reference_helpers import (
     mixed_batch,
     transition_transpose,
 )
-from solver import GLOBAL, Ranker
-from solver.kernels import LOCAL_REPAIR_MAX_DEGREE
+from ranktide.solver import GLOBAL, Ranker
+from ranktide.solver.kernels import LOCAL_REPAIR_MAX_DEGREE
 
 DAMPING = 0.85
 CORE = [f"n{i}" for i in range(8)]

@@ -14,8 +14,8 @@ from __future__ import annotations
 import pytest
 
 from reference_helpers import GraphModel, l1_distance, nx_pagerank, scores_by_name
-from solver import EventBatch, Ranker
-from solver.kernels import LOCAL_REPAIR_MAX_DEGREE
+from ranktide.solver import EventBatch, Ranker
+from ranktide.solver.kernels import LOCAL_REPAIR_MAX_DEGREE
 
 
 def test_bound_holds_after_deleting_a_heavy_edge_beside_a_light_one() -> None:
@@ -69,7 +69,7 @@ def test_a_tiny_seed_weight_is_refused_with_its_reason() -> None:
     engine and rejected (not dropped) by the event parser, and a sweep that
     stops shrinking the residual ends the settle.
     """
-    from stream.events import parse_json_records
+    from ranktide.stream.events import parse_json_records
 
     ranker = Ranker(tolerance=1e-6)
     ranker.apply(EventBatch.edges(["a", "b"], ["b", "a"]))

@@ -30,7 +30,7 @@ from reference_helpers import (
     random_model,
     scores_by_name,
 )
-from solver import GLOBAL
+from ranktide.solver import GLOBAL
 
 TOLERANCE = 1e-10
 

@@ -33,7 +33,7 @@ from reference_helpers import (
     scores_by_name,
     undirected_model,
 )
-from solver import GLOBAL
+from ranktide.solver import GLOBAL
 
 TOLERANCE = 1e-10
 

@@ -43,7 +43,7 @@ import pytest
 import scipy.optimize
 
 from reference_helpers import GraphModel, build_ranker, event_script, undirected_model
-from solver import GLOBAL
+from ranktide.solver import GLOBAL
 
 DAMPING = 0.85
 

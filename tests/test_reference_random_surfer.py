@@ -35,7 +35,7 @@ import pytest
 import scipy.stats
 
 from reference_helpers import GraphModel, build_ranker, event_script, scores_by_name
-from solver import GLOBAL
+from ranktide.solver import GLOBAL
 
 DAMPING = 0.85
 SURFERS = 400_000

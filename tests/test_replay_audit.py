@@ -20,8 +20,8 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from replay.audit import audit_snapshot
-from replay.replay import ReplayOptions, replay_log
+from ranktide.replay.audit import audit_snapshot
+from ranktide.replay.replay import ReplayOptions, replay_log
 from stream_helpers import Stream, check_snapshot_against
 
 TOLERANCE = 1e-6
@@ -38,7 +38,7 @@ def _write_log(path: Path, stream: Stream, ts_step_ms: int = 0) -> None:
 
 
 def _cli(*args: str) -> subprocess.CompletedProcess:
-    return subprocess.run([sys.executable, "-m", "stream.cli", "--log-level", "WARNING", *args],
+    return subprocess.run([sys.executable, "-m", "ranktide.stream.cli", "--log-level", "WARNING", *args],
                           capture_output=True, text=True, timeout=300)
 
 
@@ -92,7 +92,7 @@ def test_scores_do_not_depend_on_the_thread_count(random_log, tmp_path: Path) ->
     files = {}
     for threads in ("1", "2"):
         out = tmp_path / f"threads-{threads}"
-        done = subprocess.run([sys.executable, "-m", "stream.cli", "--log-level", "WARNING", "replay", str(log),
+        done = subprocess.run([sys.executable, "-m", "ranktide.stream.cli", "--log-level", "WARNING", "replay", str(log),
                                "--out", str(out), "--micro-batch", "500"],
                               capture_output=True, text=True, timeout=300,
                               env={**os.environ, "NUMBA_NUM_THREADS": threads})
@@ -228,7 +228,7 @@ def test_a_csv_log_with_iso_times_and_bad_cells(tmp_path: Path) -> None:
 
 
 def test_row_count_hint_reads_the_parquet_footer_only(random_log, tmp_path: Path) -> None:
-    from replay.logs import row_count_hint
+    from ranktide.replay.logs import row_count_hint
 
     path, _ = random_log
     table = pa.table({"op": ["insert"] * 3, "src": ["a", "b", "c"], "dst": ["b", "c", "a"]})

@@ -29,8 +29,8 @@ import pyarrow.parquet as pq
 import pytest
 
 from reference_helpers import GraphModel, l1_distance, nx_pagerank
-from replay.replay import ReplayOptions, replay_log
-from solver import GLOBAL
+from ranktide.replay.replay import ReplayOptions, replay_log
+from ranktide.solver import GLOBAL
 
 LINES = 30_000
 TOLERANCE = 1e-9

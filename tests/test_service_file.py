@@ -137,7 +137,7 @@ def test_a_missing_log_is_a_clear_error(tmp_path: Path) -> None:
 
 @pytest.mark.parametrize("as_env", [False, True])
 def test_configuration_file_environment_and_secrets(tmp_path: Path, as_env: bool) -> None:
-    from stream.config import load_config
+    from ranktide.stream.config import load_config
 
     cfg_file = tmp_path / "ranktide.toml"
     cfg_file.write_text(
@@ -227,7 +227,7 @@ def test_a_full_disk_is_a_clear_error_and_leaves_no_half_snapshot(tiny_disk: Pat
     _, err = proc.communicate(timeout=120)
     assert proc.returncode == 3
     assert "No space left on device" in err.decode() and "cannot write snapshot" in err.decode()
-    from stream.snapshots import read_manifest, verify
+    from ranktide.stream.snapshots import read_manifest, verify
 
     left = sorted(root.iterdir())
     assert not [p for p in left if p.name.endswith(".partial")]  # the failed one was cleaned up

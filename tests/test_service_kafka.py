@@ -17,7 +17,7 @@ import pyarrow as pa
 import pytest
 from confluent_kafka import Consumer, Producer
 
-from stream.sources import ARROW_CONTENT_TYPE
+from ranktide.stream.sources import ARROW_CONTENT_TYPE
 from stream_helpers import Stream, check_snapshot_against, newest_snapshot, ranktide, sigterm_and_check
 
 pytestmark = pytest.mark.kafka
@@ -197,8 +197,8 @@ def test_score_feed_carries_the_latest_score_of_every_changed_node(kafka_broker,
 
 
 def test_record_then_replay_reproduces_the_service_snapshot(kafka_broker, tmp_path: Path) -> None:
-    from replay.record import record_topic
-    from replay.replay import ReplayOptions, replay_log
+    from ranktide.replay.record import record_topic
+    from ranktide.replay.replay import ReplayOptions, replay_log
 
     topic = _topic(kafka_broker)
     stream = Stream()
@@ -267,8 +267,8 @@ def test_prefetched_batches_move_no_position_until_taken(kafka_broker) -> None:
 
     After a seek (as on a take-over) what was read ahead is dropped and read again.
     """
-    from stream.events import Limits
-    from stream.sources import KafkaSource
+    from ranktide.stream.events import Limits
+    from ranktide.stream.sources import KafkaSource
 
     topic = _topic(kafka_broker, partitions=1)
     records = [(None, json.dumps({"op": "insert", "src": f"a{i}", "dst": "b"}).encode()) for i in range(50)]

@@ -27,8 +27,8 @@ from reference_helpers import (
     scores_by_name,
     transition_transpose,
 )
-from solver import Ranker
-from stream.snapshots import Counters, load_latest, load_snapshot, write_snapshot
+from ranktide.solver import Ranker
+from ranktide.stream.snapshots import Counters, load_latest, load_snapshot, write_snapshot
 
 TOLERANCE = 1e-8
 DAMPING = 0.85
@@ -132,7 +132,7 @@ def test_an_edge_listed_twice_is_a_clear_error(tmp_path: Path) -> None:
     import pyarrow as pa
     import pyarrow.parquet as pq
 
-    from stream.snapshots import SnapshotError
+    from ranktide.stream.snapshots import SnapshotError
 
     ranker, _ = seeded_ranker(6)
     snap = write_snapshot(tmp_path, ranker, Counters(), {})
