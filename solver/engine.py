@@ -273,17 +273,47 @@ class Engine:
         """Settle profile ``k``; return the work done and the sum of its estimate."""
         g = self.graph.arrays
         stats = np.zeros(5, dtype=np.int64)
-        _, s_p, _ = kernels.settle_profile(
+        sweep, rho, s_p, abs_p = kernels.settle_profile(
             k, tol, self.n_nodes, self.n_edges,
-            g.head, g.out_weight, g.out_degree, g.src, g.dst, g.weight, g.next,
-            int(g.counters[0]),
+            g.head, g.out_weight, g.out_degree, g.dst, g.weight, g.next,
             self.P, self.R, self.teleport, self.damping,
             self._active, self._n_active, self._in_active, self._parked,
-            self._queue, self._in_queue, self._tmp, self._spill, self.graph.unit_weights,
-            SWEEP_SHARE, THETA_STEP, PUSH_LIMIT, stats,
+            self._queue, self._in_queue, SWEEP_SHARE, THETA_STEP, PUSH_LIMIT, stats,
         )
+        if sweep:
+            s_p = self._sweep_until_done(k, tol, rho, s_p, abs_p, stats)
         self._compact(k, tol, float(s_p))
         return SettleStats(*(int(x) for x in stats)), float(s_p)
+
+    def _sweep_until_done(self, k: int, tol: float, rho: float, s_p: float, abs_p: float,
+                          stats: np.ndarray) -> float:
+        """Global sweeps of profile ``k`` until its bound is met or rounding stalls them.
+
+        The loop runs here, not in a kernel: the parallel scatter must be
+        called from Python (see :func:`solver.kernels.scatter_slots`).
+        Returns the sum of the estimate.
+        """
+        n = self.n_nodes
+        stalled = 0
+        while not kernels.is_done(rho, s_p, abs_p, tol):
+            before = rho
+            rho, s_p, abs_p = self._sweep(k)
+            stats[2] += 1
+            stats[3] += self.n_edges
+            stalled = stalled + 1 if rho >= before else 0
+            if stalled >= 50:
+                break  # rounding floor reached: the bound reported is what it is
+        kernels.relist_active(k, self.R, n, self._active, self._n_active, self._in_active, self._parked)
+        return s_p
+
+    def _sweep(self, k: int) -> tuple[float, float, float]:
+        """One global sweep ``p += a r; r = d P^T r``; returns ``(||r||_1, sum p, ||p||_1)``."""
+        g = self.graph.arrays
+        n = self.n_nodes
+        kernels.sweep_begin(k, self.P, self.R, self._tmp, n, g.out_weight, self.teleport, self.damping)
+        kernels.scatter_slots(self.R[k], self._spill, self._tmp, n, g.src, g.dst, g.weight,
+                              int(g.counters[0]), self.graph.unit_weights)
+        return kernels.profile_sums(k, self.P, self.R, n)
 
     def _compact(self, k: int, tol: float, s_p: float) -> None:
         """Shorten the active list; park tiny residuals within a share of the error budget."""
@@ -308,10 +338,10 @@ class Engine:
         g = self.graph.arrays
         n = self.n_nodes
         fresh = np.zeros(n)
-        kernels.exact_residual(
-            k, n, self.P, self.S, g.src, g.dst, g.weight, int(g.counters[0]), self.graph.unit_weights,
-            g.out_weight, self.teleport, self.damping, self._tmp, self._spill, fresh,
-        )
+        kernels.exact_residual_begin(k, n, self.P, self.S, g.out_weight, self.teleport, self.damping,
+                                     self._tmp, fresh)
+        kernels.scatter_slots(fresh, self._spill, self._tmp, n, g.src, g.dst, g.weight,
+                              int(g.counters[0]), self.graph.unit_weights)
         scale = max(float(np.abs(self.S[k, :n]).sum()), 1.0)
         drift = float(np.abs(fresh - self.R[k, :n]).max(initial=0.0)) / scale
         self.R[k, :n] = fresh

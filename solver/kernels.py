@@ -374,6 +374,14 @@ def scatter_slots(out, spill, coef, n, e_src, e_dst, e_w, top, unit):
     threads run.
     With ``unit`` (every weight is 1) the weights are not read: the scatter is
     bound by memory traffic, and this drops a third of it.
+
+    Call it from Python only, never from another compiled function: a cached
+    caller of a ``parallel=True`` function can be loaded in a later process
+    without numba starting its threading layer (the caller's cache entry lacks
+    the parfor reload hook when the callee itself came from the cache), and the
+    first parallel region then crashes the process (SIGSEGV). numba issue
+    #8578 describes the same failure. ``tests/test_kernel_cache.py`` runs the
+    orders of first commands that once crashed.
     """
     for c in prange(SWEEP_CHUNKS):
         lo = top * c // SWEEP_CHUNKS
@@ -397,15 +405,23 @@ def scatter_slots(out, spill, coef, n, e_src, e_dst, e_w, top, unit):
 
 
 @njit(cache=True, nogil=True)
-def _sweep(k, P, R, tmp, spill, n, e_src, e_dst, e_w, top, unit, out_weight, a, d):
-    """One global sweep: ``p += a r``, ``r = d P^T r`` (one pass over the slots)."""
+def sweep_begin(k, P, R, tmp, n, out_weight, a, d):
+    """First half of a global sweep: ``p += a r``; ``tmp = d r / W``; ``r = 0``.
+
+    The second half is ``scatter_slots(R[k], ..., tmp, ...)`` (``r = d P^T r``),
+    called from Python (see :func:`scatter_slots` for why).
+    """
     for u in range(n):
         ru = R[k, u]
         P[k, u] += a * ru
         W = out_weight[u]
         tmp[u] = d * ru / W if W > 0.0 else 0.0
         R[k, u] = 0.0
-    scatter_slots(R[k], spill, tmp, n, e_src, e_dst, e_w, top, unit)
+
+
+@njit(cache=True, nogil=True)
+def profile_sums(k, P, R, n):
+    """``(||r||_1, sum p, ||p||_1)`` of profile ``k``."""
     rho = 0.0
     s_p = 0.0
     abs_p = 0.0
@@ -417,13 +433,31 @@ def _sweep(k, P, R, tmp, spill, n, e_src, e_dst, e_w, top, unit, out_weight, a, 
 
 
 @njit(cache=True, nogil=True)
+def is_done(rho, s_p, abs_p, tol):
+    """:func:`_done` for callers in Python."""
+    return _done(rho, s_p, abs_p, tol)
+
+
+@njit(cache=True, nogil=True)
+def relist_active(k, R, n, active, n_active, in_active, parked):
+    """After sweeps every node may carry residual: list all that do, park none."""
+    n_active[k] = 0
+    parked[k] = 0.0
+    for u in range(n):
+        in_active[k, u] = R[k, u] != 0.0
+        if in_active[k, u]:
+            active[k, n_active[k]] = u
+            n_active[k] += 1
+
+
+@njit(cache=True, nogil=True)
 def settle_profile(
     k, tol, n, m,
-    head, out_weight, out_degree, e_src, e_dst, e_w, e_next, top,
-    P, R, a, d, active, n_active, in_active, parked, queue, in_queue, tmp, spill, unit, sweep_share, theta_step,
+    head, out_weight, out_degree, e_dst, e_w, e_next,
+    P, R, a, d, active, n_active, in_active, parked, queue, in_queue, sweep_share, theta_step,
     push_limit, stats,
 ):
-    """Push profile ``k`` until its certified bound is at most ``tol``.
+    """Push profile ``k`` until its certified bound is at most ``tol``, or hand over to sweeps.
 
     Local phases push, first-in first-out, every node whose residual exceeds
     ``theta * max(deg, 1)``; ``theta`` halves between phases, so large residuals
@@ -434,6 +468,11 @@ def settle_profile(
     [3]. Forward push alone has bad worst cases on directed graphs; the switch
     bounds each phase's cost by a constant number of sweeps. A residual more
     than ``push_limit`` times the error budget goes to sweeps at once.
+
+    Returns ``(sweep, rho, s_p, abs_p)``: with ``sweep`` true the caller
+    continues with global sweeps (:func:`sweep_begin`, :func:`scatter_slots`)
+    until the bound is met; the sweep itself is not called from here (see
+    :func:`scatter_slots`).
 
     ``stats`` accumulates: [0] pushes, [1] edges touched by pushes,
     [2] sweeps, [3] edges touched by sweeps, [4] local phases.
@@ -459,18 +498,11 @@ def settle_profile(
     budget = tol * s_p / (1.0 + abs_p / s_p + tol) if s_p > 0.0 else 0.0
     sweeping = s_p > 0.0 and rho > push_limit * budget
     rounds = 0
-    stalled = 0
-    while not _done(rho, s_p, abs_p, tol):
+    while not sweeping and not _done(rho, s_p, abs_p, tol):
         rounds += 1
-        if sweeping or rounds > 10_000:
-            before = rho
-            rho, s_p, abs_p = _sweep(k, P, R, tmp, spill, n, e_src, e_dst, e_w, top, unit, out_weight, a, d)
-            stats[2] += 1
-            stats[3] += m
-            stalled = stalled + 1 if rho >= before else 0
-            if stalled >= 50:
-                break  # rounding floor reached: the bound reported is what it is
-            continue
+        if rounds > 10_000:
+            sweeping = True
+            break
         # collect the nodes due in this phase
         qh = 0
         qt = 0
@@ -543,26 +575,19 @@ def settle_profile(
         rho = parked[k]
         for i in range(n_active[k]):
             rho += abs(R[k, active[k, i]])
-    if sweeping:
-        # after sweeps every node may carry residual: all are listed, none parked
-        n_active[k] = 0
-        parked[k] = 0.0
-        for u in range(n):
-            in_active[k, u] = R[k, u] != 0.0
-            if in_active[k, u]:
-                active[k, n_active[k]] = u
-                n_active[k] += 1
-    return rho, s_p, abs_p
+    return sweeping and not _done(rho, s_p, abs_p, tol), rho, s_p, abs_p
 
 
 @njit(cache=True, nogil=True)
-def exact_residual(k, n, P, S, e_src, e_dst, e_w, top, unit, out_weight, a, d, tmp, spill, out):
-    """``r = s - p/a + (d/a) P^T p`` recomputed from scratch into ``out``."""
+def exact_residual_begin(k, n, P, S, out_weight, a, d, tmp, out):
+    """First half of ``r = s - p/a + (d/a) P^T p``: ``out = s - p/a``, ``tmp = (d/a) p / W``.
+
+    The caller adds ``P^T tmp`` into ``out`` with :func:`scatter_slots` (from Python).
+    """
     for u in range(n):
         out[u] = S[k, u] - P[k, u] / a
         W = out_weight[u]
         tmp[u] = (d / a) * P[k, u] / W if W > 0.0 else 0.0
-    scatter_slots(out, spill, tmp, n, e_src, e_dst, e_w, top, unit)
 
 
 @njit(cache=True, nogil=True)
