@@ -364,6 +364,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--plot", type=Path, metavar="FILE.png", help="plot measured error and bound against events applied")
     p.set_defaults(func=_cmd_audit)
 
+    from ranktide.replay.recompute import add_parser as add_recompute_parser
+
+    add_recompute_parser(sub, add_engine_options, _personalization)
+
     p = sub.add_parser("demo", help="the built-in scenario end to end: consumer, snapshots, audit, pictures",
                        description="Generate a fictional package ecosystem whose dependencies change with releases "
                                    "(with a personalization seeded from one team's services), run the consumer on it "
