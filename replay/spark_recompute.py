@@ -57,7 +57,9 @@ def spark_session(master: str | None, conf: dict[str, str]):
     settings = {"spark.ui.showConsoleProgress": "false",
                 "spark.cleaner.referenceTracking.cleanCheckpoints": "true"}
     if master.startswith("local"):
+        # tiny stages: few partitions, and no adaptive re-planning of each iteration's three shuffles
         settings["spark.sql.shuffle.partitions"] = LOCAL_SHUFFLE_PARTITIONS
+        settings["spark.sql.adaptive.enabled"] = "false"
     settings.update(conf)
     builder = SparkSession.builder.appName("ranktide recompute").master(master)
     for key, value in settings.items():
@@ -66,7 +68,7 @@ def spark_session(master: str | None, conf: dict[str, str]):
         spark = builder.getOrCreate()
     except Exception as exc:  # the JVM failed to start: Java missing, a bad setting
         raise RecomputeError(f"cannot start Spark (master {master}): {str(exc).splitlines()[0]}") from None
-    spark.sparkContext.setLogLevel("WARN")
+    spark.sparkContext.setLogLevel("ERROR")
     if "spark.checkpoint.dir" in settings:
         spark.sparkContext.setCheckpointDir(settings["spark.checkpoint.dir"])
     try:
@@ -95,13 +97,16 @@ class Lineage:
         return df.checkpoint(eager) if self.reliable else df.localCheckpoint(eager)
 
     def cut(self, df):
-        """Checkpoint ``df`` (materialised by its first action) and release the cut before the last."""
+        """Checkpoint ``df``; it is materialised by its first action, after which call :meth:`release_older`."""
         before = self._persisted()
         out = df.checkpoint(False) if self.reliable else df.localCheckpoint(False)
-        fresh = sorted(self._persisted() - before)
-        stale, self._held = self._held, fresh
-        self._release(stale)
+        self._held.append(sorted(self._persisted() - before))
         return out
+
+    def release_older(self) -> None:
+        """Release every cut but the newest (call once the newest has been materialised)."""
+        while len(self._held) > 1:
+            self._release(self._held.pop(0))
 
     def _release(self, rdd_ids: list[int]) -> None:
         rdds = self.sc._jsc.sc().getPersistentRDDs()
@@ -111,7 +116,8 @@ class Lineage:
                 found.get().unpersist(False)
 
     def close(self) -> None:
-        self._release(self._held)
+        for ids in self._held:
+            self._release(ids)
         self._held = []
 
 
@@ -187,7 +193,7 @@ class _Profile:
         self.unlisted = 0.0
         self.rho = 0.0
 
-    def facts(self) -> dict:
+    def facts(self, n_nodes: int) -> dict:
         def fin(x: float) -> float | None:
             return float(x) if math.isfinite(x) else None
 
@@ -195,7 +201,7 @@ class _Profile:
         return {"estimate_sum": self.terms.total if self.terms else 0.0,
                 "rtol_reached": fin(self.rtol_reached), "absolute_reached": fin(self.absolute_reached),
                 "l1_bound": fin(self.terms.l1 if self.terms else 0.0),
-                "certified_top": None if glob else self.top, "certified_threshold": self.threshold,
+                "certified_top": None if glob else min(self.top, n_nodes), "certified_threshold": self.threshold,
                 "unlisted_bound": 0.0 if glob else fin(self.unlisted)}
 
 
@@ -243,7 +249,8 @@ def recompute_spark(spark, inp: RecomputeInput, out: Path, settings: Settings, s
             *[(a * F.col(f"s{j}") + d * F.coalesce(F.col(f"c{j}"), F.lit(0.0))).alias(f"n{j}") for j in range(k)])
         nxt = lineage.cut(nxt.select("*", *[((F.col(f"n{j}") - F.col(f"x{j}")) / a).alias(f"r{j}")
                                            for j in range(k)]))
-        figures = _certify(nxt, state_of, k, settings)
+        figures = _certify(nxt, state_of, k, settings)  # its first aggregate materialises the cut
+        lineage.release_older()
         if progress:
             now = time.perf_counter()
             print_progress(iteration, figures, now - last)
@@ -259,7 +266,7 @@ def recompute_spark(spark, inp: RecomputeInput, out: Path, settings: Settings, s
     tables = {"scores.parquet": (scores, ["profile", "node"]),
               "edges.parquet": (edges, ["src", "dst"]),
               "seeds.parquet": (seeds_out.select("profile", "node", "weight"), ["profile", "node"])}
-    facts = {p.name: p.facts() for p in state_of}
+    facts = {p.name: p.facts(n_nodes) for p in state_of}
     master = spark.sparkContext.master
     manifest = recompute_manifest(settings, "spark", iteration, n_nodes, n_edges, facts, inp,
                                   time.perf_counter() - started, {"master": master})
@@ -297,7 +304,13 @@ def _score_expr(p: _Profile):
 
 
 def _certify(nxt, state_of: list[_Profile], k: int, settings: Settings) -> dict[str, tuple[float, float, float]]:
-    """Aggregates of the iterate, then each profile's certificate (``solver.bounds.certify``) in the job."""
+    """Aggregates of the iterate, then each profile's certificate (``solver.bounds.certify``) in the job.
+
+    Returns, per profile, ``(max |r|, certified relative error, L1 bound)``;
+    while a lower bound on the relative error still fails the target, the
+    exact certificate (a second pass and a top-K) is skipped and the lower
+    bound is returned.
+    """
     from pyspark.sql import functions as F
 
     aggs = [F.sum(F.greatest(F.col("x0"), F.lit(0.0))).alias("gpos")]
@@ -305,18 +318,24 @@ def _certify(nxt, state_of: list[_Profile], k: int, settings: Settings) -> dict[
         x, r = F.col(f"x{j}"), F.col(f"r{j}")
         aggs += [F.max(F.abs(r)).alias(f"rho{j}"), F.sum(F.abs(r)).alias(f"r1{j}"), F.sum(x).alias(f"tot{j}"),
                  F.sum(F.abs(x)).alias(f"abs{j}"), F.sum(F.when(x > 0, 1).otherwise(0)).alias(f"pos{j}"),
-                 F.min(F.when(x > 0, x)).alias(f"minpos{j}")]
+                 F.min(F.when(x > 0, x)).alias(f"minpos{j}"), F.max(x).alias(f"max{j}"),
+                 F.max_by(F.col("x0"), x).alias(f"gat{j}")]
     row = nxt.agg(*aggs).collect()[0]
     rho_g = float(row["rho0"] or 0.0)
     xbar_g = F.greatest(F.col("x0"), F.lit(0.0)) / F.lit(1.0 - rho_g) if rho_g < 1.0 else F.lit(math.inf)
     sum_xbar = float(row["gpos"]) / (1.0 - rho_g) if rho_g < 1.0 else math.inf
-    second = []
     for p in state_of:
         j = p.j
         p.rho = float(row[f"rho{j}"] or 0.0)
         sum_err = 0.0 if p.rho == 0.0 else p.rho * sum_xbar
         p.terms = bound_terms(p.rho, float(row[f"r1{j}"] or 0.0), float(row[f"tot{j}"] or 0.0),
                               float(row[f"abs{j}"] or 0.0), sum_err)
+        p.rtol_reached = p.absolute_reached = 0.0 if p.empty else _lower_rtol(p, row, rho_g)
+    if not all(profile_met(settings.targets, p.rtol_reached, 0.0, p.terms.l1) for p in state_of):
+        return {p.name: (p.rho, p.rtol_reached, p.terms.l1) for p in state_of}
+    second = []
+    for p in state_of:
+        j = p.j
         if p.empty:
             p.threshold = p.rtol_reached = p.absolute_reached = p.unlisted = 0.0
             continue
@@ -342,20 +361,41 @@ def _certify(nxt, state_of: list[_Profile], k: int, settings: Settings) -> dict[
     if second:
         row2 = nxt.agg(*second).collect()[0]
         for p in state_of:
-            if p.empty:
-                continue
-            j = p.j
-            p.rtol_reached = float(row2[f"rel{j}"]) if row2[f"rel{j}"] is not None else 0.0
-            worst = row2[f"rest{j}"]
-            p.absolute_reached = 0.0
-            if worst is not None:
-                floor = p.threshold if p.threshold > 0.0 else 0.0
-                if p.threshold > 0.0 and row2[f"atk{j}"] is not None:
-                    floor = min(float(row2[f"atk{j}"]), p.threshold)
-                worst = float(worst)
-                p.absolute_reached = worst / floor if floor > 0.0 else (0.0 if worst == 0.0 else math.inf)
-            p.unlisted = float(row2[f"unl{j}"]) if row2[f"unl{j}"] is not None else 0.0
+            if not p.empty:
+                _take_certificate(p, row2)
     return {p.name: (p.rho, max(p.rtol_reached, p.absolute_reached), p.terms.l1) for p in state_of}
+
+
+def _take_certificate(p: _Profile, row) -> None:
+    """The figures of ``solver.bounds.certify`` from the second pass's aggregates."""
+    j = p.j
+    p.rtol_reached = float(row[f"rel{j}"]) if row[f"rel{j}"] is not None else 0.0
+    worst = row[f"rest{j}"]
+    p.absolute_reached = 0.0
+    if worst is not None:
+        floor = p.threshold if p.threshold > 0.0 else 0.0
+        if p.threshold > 0.0 and row[f"atk{j}"] is not None:
+            floor = min(float(row[f"atk{j}"]), p.threshold)
+        worst = float(worst)
+        p.absolute_reached = worst / floor if floor > 0.0 else (0.0 if worst == 0.0 else math.inf)
+    p.unlisted = float(row[f"unl{j}"]) if row[f"unl{j}"] is not None else 0.0
+
+
+def _lower_rtol(p: _Profile, row, rho_g: float) -> float:
+    """A lower bound on the certified relative error: the one of the best node (always certified).
+
+    Its bound is at least ``min(raw, l1)`` with ``raw`` of :func:`_bound_expr`,
+    from the aggregates alone; when this already exceeds ``rtol`` the exact
+    certificate is not computed.
+    """
+    t = p.terms
+    best = float(row[f"max{p.j}"] or 0.0)
+    if not t.usable or best <= 0.0:
+        return math.inf
+    xbar = max(float(row[f"gat{p.j}"] or 0.0), 0.0) / (1.0 - rho_g) if rho_g < 1.0 else math.inf
+    raw = (t.rho * xbar + best / t.total * t.drift) / (t.total - t.drift) if t.rho > 0.0 else \
+        best / t.total * t.drift / (t.total - t.drift)
+    return min(raw, t.l1) / (best / t.total)
 
 
 def _scores(nxt, ids, state_of: list[_Profile]):
