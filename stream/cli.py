@@ -237,8 +237,18 @@ def _cmd_record(args: argparse.Namespace) -> int:
 
 
 def _cmd_audit(args: argparse.Namespace) -> int:
-    from ranktide.replay.audit import run_audit
+    from ranktide.replay.audit import run_audit, run_audit_against
 
+    if args.against is not None or args.engine is not None:
+        from ranktide.replay.recompute import RecomputeError, parse_spark_conf
+
+        try:
+            conf = parse_spark_conf(args.spark_conf)
+        except RecomputeError as exc:
+            print(f"ranktide audit: error: {exc}", file=sys.stderr)
+            return 2
+        options = {"rtol": args.rtol, "master": args.master, "spark_conf": conf, "out": args.recompute_out}
+        return run_audit_against(args.root, args.snapshot, args.against, args.engine, args.json, options)
     return run_audit(args.root, args.snapshot, args.all, args.k, args.json, args.plot)
 
 
@@ -362,6 +372,18 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("-k", type=int, default=100, help="size of the top set for overlap and Kendall tau (default 100)")
     p.add_argument("--json", action="store_true", help="print the results as JSON")
     p.add_argument("--plot", type=Path, metavar="FILE.png", help="plot measured error and bound against events applied")
+    p.add_argument("--against", type=Path, metavar="RECOMPUTED",
+                   help="compare node by node with this recomputed snapshot (folder or root, from 'ranktide "
+                        "recompute'): every difference must lie within the two error_bounds together")
+    p.add_argument("--engine", choices=("local", "spark"),
+                   help="recompute the snapshot's graph with this engine first (spark: for graphs too large for "
+                        "the in-memory audit), then compare as --against does")
+    p.add_argument("--rtol", type=_rtol, default=None,
+                   help="with --engine: the recompute's per-node contract (default 1e-6)")
+    p.add_argument("--master", help="with --engine spark: the Spark master URL (default local[*])")
+    p.add_argument("--spark-conf", action="append", metavar="KEY=VALUE", help="with --engine spark: a Spark setting")
+    p.add_argument("--recompute-out", type=Path, metavar="ROOT",
+                   help="with --engine: keep the recomputed snapshot under ROOT (default: a temporary folder)")
     p.set_defaults(func=_cmd_audit)
 
     from ranktide.replay.recompute import add_parser as add_recompute_parser
