@@ -93,7 +93,9 @@ def describe_newest(root: Path, as_json: bool = False) -> int:
     except SnapshotError as exc:
         print(f"ranktide status: error: {exc}", file=sys.stderr)
         return 2
-    print(json.dumps(manifest, indent=2) if as_json else "\n".join(describe(manifest, path)))
+    from ranktide.stream.recompute_job import describe_status
+
+    print(json.dumps(manifest, indent=2) if as_json else "\n".join(describe(manifest, path) + describe_status(root)))
     return 0
 
 

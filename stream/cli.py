@@ -173,6 +173,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
         "score_topic": args.score_topic, "metrics": args.metrics,
         "log_format": "json" if args.log_json else None, "stop_at_end": True if args.stop_at_end else None,
         "max_id_length": args.max_id_length, "max_message_bytes": args.max_message_bytes,
+        "recompute_interval": args.recompute_interval, "recompute_engine": args.recompute_engine,
     }
     if args.personalization:
         overrides["personalizations"] = {k: str(v) for k, v in args.personalization}
@@ -327,6 +328,11 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--personalization", action="append", type=_personalization, metavar="NAME=SEEDS_FILE",
                    help="personalized profile seeded from a file when starting without a snapshot; may be repeated")
     p.add_argument("--stop-at-end", action="store_true", help="stop with a final snapshot when the source has no more")
+    p.add_argument("--recompute-interval", type=_non_negative_float, metavar="SECONDS",
+                   help="every SECONDS, recompute the newest snapshot's graph in a separate process and audit the "
+                        "scores against it (default 0: off)")
+    p.add_argument("--recompute-engine", choices=("local", "spark"),
+                   help="engine of the periodic recompute (default local; spark needs ranktide[spark])")
     p.add_argument("--log-json", action="store_true", help="structured logs, one JSON object per line")
     p.add_argument("--quiet", action="store_true", help="do not describe the final snapshot")
     p.set_defaults(func=_cmd_run)

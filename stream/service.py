@@ -35,6 +35,7 @@ from ranktide.solver import Ranker
 from ranktide.stream.config import ServiceConfig
 from ranktide.stream.events import Limits
 from ranktide.stream.metrics import Metrics, start_metrics_server
+from ranktide.stream.recompute_job import RecomputeJob
 from ranktide.stream.snapshots import Counters, SnapshotError, load_latest, prune, write_snapshot
 from ranktide.stream.sources import Source, SourceChunk, open_source
 
@@ -233,6 +234,8 @@ class Service:
         feed = ScoreFeed(cfg.score_topic, bootstrap, cfg.kafka, cfg.score_threshold, cfg.score_interval) \
             if cfg.score_topic and bootstrap else None
         server = start_metrics_server(cfg.metrics, self.metrics) if cfg.metrics else None
+        recompute = RecomputeJob(self.out, cfg.recompute_interval, cfg.recompute_engine, cfg.recompute_master,
+                                 self.metrics)
         thresholds = gc.get_threshold()
         # the Kafka client makes one object per message: with the default thresholds the
         # collector runs hundreds of times per batch over objects that all live on
@@ -254,6 +257,7 @@ class Service:
                     self._settle()
                     self.metrics.feed_sent += feed.publish(self.ranker, self.source.positions())
                 self._snapshot_if_due(rejects)
+                recompute.tick()  # starts or collects a child process; never waits on it
                 if cfg.stop_at_end and chunk is None and self.source.at_end():
                     log.info("source exhausted: stopping")
                     break
@@ -271,6 +275,7 @@ class Service:
             gc.set_threshold(*thresholds)
             gc.unfreeze()
             self._closing = True
+            recompute.close()
             if lock is not None:
                 lock.close()
             self.source.close()
