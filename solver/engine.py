@@ -395,7 +395,8 @@ class Engine:
         largest one, so that small changes of ``delta`` do not unpark nodes.
         """
         stats = SettleStats()
-        weights = self._weights[0]
+        weights = Weights(0.0, self._global_limit(0.0))  # the top rung: delta is usually tiny
+        self._weights[0] = weights
         for _ in range(64):
             stats.add(self._push_and_sweep(0, weights))
             limit = self._global_limit(self._sum_shift(0))
