@@ -381,6 +381,8 @@ class Engine:
     def _sum_shift(self, k: int) -> float:
         """``||r_k||_1 / sum p_k``: how far the normalisation may move (``inf`` before any estimate)."""
         r1 = kernels.active_l1(k, self.R, self._active, self._n_active, self._parked)
+        if r1 == 0.0:
+            return 0.0  # an exact estimate, or an empty profile: nothing can shift
         s_p = self._psum[k]
         return r1 / s_p if s_p > r1 else np.inf
 
@@ -395,7 +397,8 @@ class Engine:
         largest one, so that small changes of ``delta`` do not unpark nodes.
         """
         stats = SettleStats()
-        weights = self._weights[0]
+        weights = Weights(0.0, self._global_limit(0.0))  # the top rung: delta is usually tiny
+        self._weights[0] = weights
         for _ in range(64):
             stats.add(self._push_and_sweep(0, weights))
             limit = self._global_limit(self._sum_shift(0))
