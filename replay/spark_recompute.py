@@ -47,12 +47,18 @@ def spark_session(master: str | None, conf: dict[str, str]):
     """A SparkSession for one recompute (stopped afterwards); local mode needs no configuration.
 
     ``spark.checkpoint.dir`` (a ``--spark-conf``) makes the iteration use
-    reliable checkpoints in that folder instead of local ones.
+    reliable checkpoints in that folder instead of local ones. A session
+    already active in this process (a notebook, a test) is used as it is and
+    left running.
     """
     try:
         from pyspark.sql import SparkSession
     except ImportError:
         raise RecomputeError(INSTALL_HINT) from None
+    active = SparkSession.getActiveSession()
+    if active is not None:
+        yield active
+        return
     master = master or "local[*]"
     settings = {"spark.ui.showConsoleProgress": "false",
                 "spark.cleaner.referenceTracking.cleanCheckpoints": "true"}
