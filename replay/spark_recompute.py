@@ -92,11 +92,8 @@ class Lineage:
         self._held: list[int] = []
 
     def _persisted(self) -> set[int]:
-        ids = self.sc._jsc.sc().getPersistentRDDs().keySet().iterator()
-        out = set()
-        while ids.hasNext():
-            out.add(int(ids.next()))
-        return out
+        listed = self.sc._jsc.sc().getPersistentRDDs().keys().mkString(",")  # one call to the JVM
+        return {int(x) for x in listed.split(",") if x}
 
     def fix(self, df, eager: bool = True):
         """Checkpoint ``df`` once for good (kept to the end)."""
@@ -146,19 +143,22 @@ def read_edges(spark, inp: RecomputeInput):
     weight = F.col("weight").cast("double") if "weight" in raw.columns else F.lit(1.0)
     edges = raw.select(F.col("src").cast("string").alias("src"), F.col("dst").cast("string").alias("dst"),
                        weight.alias("weight"))
-    bad = edges.agg(
-        F.sum(F.when(F.col("src").isNull() | F.col("dst").isNull(), 1).otherwise(0)).alias("nulls"),
+    pairs = edges.groupBy("src", "dst").agg(
+        F.count(F.lit(1)).alias("rows"),
         F.sum(F.when(~((F.col("weight") >= MIN_WEIGHT) & (F.col("weight") <= MAX_WEIGHT))
-                     | F.col("weight").isNull(), 1).otherwise(0)).alias("weights"),
+                     | F.col("weight").isNull(), 1).otherwise(0)).alias("bad"))
+    found = pairs.agg(  # one job checks all three: null ids, weights, pairs listed twice
+        F.sum(F.when(F.col("src").isNull() | F.col("dst").isNull(), F.col("rows")).otherwise(0)).alias("nulls"),
+        F.sum("bad").alias("weights"), F.sum("rows").alias("rows"),
+        F.max_by(F.concat_ws(" -> ", "src", "dst"), "rows").alias("pair"), F.max("rows").alias("most"),
     ).collect()[0]
-    if bad["nulls"]:
-        raise RecomputeError(f"{inp.edges}: {bad['nulls']} rows have a null src or dst")
-    if bad["weights"]:
-        raise RecomputeError(f"{inp.edges}: {bad['weights']} rows have a weight that is null, not finite or "
+    if found["nulls"]:
+        raise RecomputeError(f"{inp.edges}: {found['nulls']} rows have a null src or dst")
+    if found["weights"]:
+        raise RecomputeError(f"{inp.edges}: {found['weights']} rows have a weight that is null, not finite or "
                              f"outside [{MIN_WEIGHT:g}, {MAX_WEIGHT:g}]")
-    twice = edges.groupBy("src", "dst").count().filter(F.col("count") > 1).limit(1).collect()
-    if twice:
-        raise RecomputeError(f"{inp.edges}: the pair {twice[0]['src']} -> {twice[0]['dst']} is listed more than once")
+    if (found["most"] or 0) > 1:
+        raise RecomputeError(f"{inp.edges}: the pair {found['pair']} is listed {found['most']} times")
     return edges
 
 
@@ -225,7 +225,11 @@ def recompute_spark(spark, inp: RecomputeInput, out: Path, settings: Settings, s
     weighted = (edges.join(ids.withColumnRenamed("name", "src").withColumnRenamed("id", "sid"), "src")
                 .join(ids.withColumnRenamed("name", "dst").withColumnRenamed("id", "did"), "dst"))
     out_w = weighted.groupBy("sid").agg(F.sum("weight").alias("out_w"))
-    P = lineage.fix(weighted.join(out_w, "sid").select("sid", "did", (F.col("weight") / F.col("out_w")).alias("p")))
+    # P and the iterate are hash-partitioned alike on the source node, so that only the
+    # group-by on the destination shuffles in each iteration (checkpoints keep the partitioning)
+    parts = int(spark.conf.get("spark.sql.shuffle.partitions"))
+    P = lineage.fix(weighted.join(out_w, "sid").select("sid", "did", (F.col("weight") / F.col("out_w")).alias("p"))
+                    .repartition(parts, "sid"))
     profiles = [GLOBAL] + sorted(n for n in inp.seeds if n != GLOBAL)
     s_cols = [F.lit(1.0).alias("s0")]
     seeded = seeds.filter(F.col("weight") != 0.0).join(ids.withColumnRenamed("name", "node"), "node")
@@ -240,7 +244,8 @@ def recompute_spark(spark, inp: RecomputeInput, out: Path, settings: Settings, s
     a, d = 1.0 - settings.damping, settings.damping
     k = len(profiles)
     X = lineage.fix(state.select("id", *s_cols).select(
-        "id", *[f"s{j}" for j in range(k)], *[(a * F.col(f"s{j}")).alias(f"x{j}") for j in range(k)]))
+        "id", *[f"s{j}" for j in range(k)], *[(a * F.col(f"s{j}")).alias(f"x{j}") for j in range(k)])
+        .repartition(parts, "id"))
     n_nodes = names.count()
     n_edges = P.count()
     empty = {name: not any(inp.seeds[name][1]) for name in profiles[1:]}
