@@ -346,7 +346,13 @@ def run_engine(inp: RecomputeInput, out: Path, settings: Settings, engine: str, 
         from ranktide.replay.spark_recompute import recompute_spark, spark_session
 
         with spark_session(master, spark_conf) as spark:
-            return recompute_spark(spark, inp, out, settings, staging=staging, progress=progress)
+            try:
+                return recompute_spark(spark, inp, out, settings, staging=staging, progress=progress)
+            except Exception as exc:  # a failed Spark job (lost executors, memory): one line, not a JVM trace
+                if not type(exc).__module__.startswith(("py4j", "pyspark")):
+                    raise
+                first = next((line for line in str(exc).splitlines() if line.strip()), type(exc).__name__)
+                raise RecomputeError(f"the Spark job failed: {first[:500]}") from None
     return recompute_local(inp, out, settings, progress=progress)
 
 

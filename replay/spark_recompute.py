@@ -436,6 +436,7 @@ def write_single_parquet(spark, df, order: list[str], dest: Path, staging: str |
     file is then moved (local) or copied with Hadoop's FileSystem (``hdfs://``,
     ``s3a://``) to ``dest`` and the staging folder removed.
     """
+    dest = dest.resolve()
     where = f"{staging.rstrip('/')}/{dest.stem}" if staging else (dest.parent / f".spark-{dest.stem}").as_uri()
     try:
         df.repartition(1).sortWithinPartitions(*order).write.mode("overwrite").parquet(where)
