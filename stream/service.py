@@ -218,7 +218,7 @@ class Service:
         bootstrap = cfg.source[len("kafka://"):].split("/")[0] if cfg.source.startswith("kafka://") else None
         rejects = RejectsSink(cfg.rejects, self.out, cfg.kafka, bootstrap)
         self.source = open_source(cfg.source, cfg.group, cfg.kafka, self.limits, cfg.poll_records,
-                                  cfg.file_chunk_bytes)
+                                  cfg.file_chunk_bytes, finite=cfg.stop_at_end)
         lock = None
         if bootstrap:
             from ranktide.stream.sources import OwnerLock

@@ -80,15 +80,22 @@ class FileSource:
         Input caps.
     chunk_bytes : int
         Most bytes taken from a file in one poll.
+    finite : bool
+        The files are complete (``--stop-at-end``): a last record without its
+        newline counts once the file has stopped growing. Otherwise a partial
+        last line waits for its newline, since the writer may not be done.
     """
 
-    def __init__(self, path: Path, limits: Limits = Limits(), chunk_bytes: int = 8 << 20) -> None:
+    def __init__(self, path: Path, limits: Limits = Limits(), chunk_bytes: int = 8 << 20,
+                 finite: bool = False) -> None:
         self.path = Path(path)
         if not self.path.exists():
             raise LogError(f"{self.path}: no such file or folder")
         self.limits = limits
         self.chunk_bytes = chunk_bytes
+        self.finite = finite
         self._pos: dict[str, dict[str, int]] = {}
+        self._tail: dict[str, int] = {}  # file -> size when only a partial line was left unread
 
     def _files(self) -> list[Path]:
         if self.path.is_dir():
@@ -119,18 +126,33 @@ class FileSource:
                 raise LogError(f"{f}: file shrank below the recorded position {pos['offset']} (truncated or replaced?)")
             if size == pos["offset"]:
                 continue
-            for chunk in read_log(f, self.limits, pos["offset"], pos["line"] + 1, follow_partial=True,
-                                  chunk_bytes=self.chunk_bytes):
-                places = [
-                    {"file": key, "line": int(chunk.lines[r]), "offset": int(chunk.offsets[r]), "record": chunk.raw(int(r))[:2000]}
-                    for r in chunk.parsed.rejected_rows
-                ]
-                records = int(chunk.parsed.valid_rows.size + chunk.parsed.rejected_rows.size)
-                pos["line"] = chunk.end_line
-                pos["offset"] = chunk.end_offset
-                return SourceChunk(chunk.parsed, places, records)
+            chunk = self._read(f, pos, follow_partial=True)
+            if chunk is None and self.finite:
+                # only a partial last line is left: it is the last record once the file stops growing
+                if self._tail.get(key) == size:
+                    chunk = self._read(f, pos, follow_partial=False)
+                self._tail[key] = size
+            if chunk is None:
+                continue
+            places = [
+                {"file": key, "line": int(chunk.lines[r]), "offset": int(chunk.offsets[r]), "record": chunk.raw(int(r))[:2000]}
+                for r in chunk.parsed.rejected_rows
+            ]
+            records = int(chunk.parsed.valid_rows.size + chunk.parsed.rejected_rows.size)
+            pos["line"] = chunk.end_line
+            pos["offset"] = chunk.end_offset
+            return SourceChunk(chunk.parsed, places, records)
         time.sleep(min(timeout, 0.05))
         return None
+
+    def _read(self, f: Path, pos: dict[str, int], follow_partial: bool):
+        """The next chunk of ``f`` from ``pos`` (None when no complete record is there)."""
+        reader = read_log(f, self.limits, pos["offset"], pos["line"] + 1, follow_partial=follow_partial,
+                          chunk_bytes=self.chunk_bytes)
+        try:
+            return next(reader, None)
+        finally:
+            reader.close()
 
     def at_end(self) -> bool:
         for f in self._files():
@@ -633,8 +655,8 @@ class OwnerLock:
 
 
 def open_source(url: str, group: str, properties: dict[str, str], limits: Limits, batch_records: int,
-                chunk_bytes: int = 8 << 20) -> Source:
-    """A source for ``file:PATH`` or ``kafka://...``."""
+                chunk_bytes: int = 8 << 20, finite: bool = False) -> Source:
+    """A source for ``file:PATH`` or ``kafka://...``; ``finite``: files are complete (see FileSource)."""
     if url.startswith("file:"):
-        return FileSource(Path(url[len("file:"):]), limits, chunk_bytes)
+        return FileSource(Path(url[len("file:"):]), limits, chunk_bytes, finite)
     return KafkaSource(url, group, properties, limits, batch_records)
