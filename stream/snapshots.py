@@ -27,6 +27,7 @@ import logging
 import os
 import re
 import shutil
+import tempfile
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
@@ -46,6 +47,31 @@ log = logging.getLogger("ranktide.snapshots")
 
 class SnapshotError(RuntimeError):
     """A snapshot could not be written or read; the message says where and why."""
+
+
+class OutputError(SnapshotError):
+    """An output (a snapshot, the rejects file, a picture) cannot be written: exit code 3."""
+
+
+def check_writable(folder: Path, what: str, target: Path | None = None) -> Path:
+    """Create ``folder`` if needed and prove a file can be made in it, before any long work.
+
+    ``what`` and ``target`` (default: the folder) name the output in the error.
+
+    Raises
+    ------
+    OutputError
+        Naming ``what``, the folder and the system's reason.
+    """
+    folder = Path(folder)
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+        fd, probe = tempfile.mkstemp(prefix=".ranktide-probe-", dir=folder)
+        os.close(fd)
+        os.unlink(probe)
+    except OSError as exc:
+        raise OutputError(f"cannot write the {what} {target or folder}: {exc.strerror or exc}") from exc
+    return folder
 
 
 @dataclass
@@ -191,7 +217,7 @@ def write_snapshot(
 
     Raises
     ------
-    SnapshotError
+    OutputError
         When the root cannot be created or written (permissions, full disk);
         no ``snap-`` folder is left behind in that case.
     """
@@ -199,7 +225,7 @@ def write_snapshot(
     try:
         root.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
-        raise SnapshotError(f"cannot create snapshot root {root}: {exc.strerror or exc}") from exc
+        raise OutputError(f"cannot create snapshot root {root}: {exc.strerror or exc}") from exc
     seq = next_sequence(root) if sequence is None else int(sequence)
     final = root / f"snap-{seq:08d}"
     partial = root / f".snap-{seq:08d}.partial"
@@ -240,7 +266,7 @@ def write_snapshot(
         _fsync_dir(root)
     except OSError as exc:
         shutil.rmtree(partial, ignore_errors=True)
-        raise SnapshotError(f"cannot write snapshot {final}: {exc.strerror or exc}") from exc
+        raise OutputError(f"cannot write snapshot {final}: {exc.strerror or exc}") from exc
     return final
 
 

@@ -15,7 +15,9 @@ Positions, as stored in a manifest's ``positions``:
 from __future__ import annotations
 
 import logging
+import math
 import queue
+import re
 import threading
 import time
 from dataclasses import dataclass, field
@@ -29,6 +31,74 @@ from ranktide.replay.logs import LogError, read_log
 from ranktide.stream.events import EventBatch, Limits, Parsed, parse_json_records, validate_table
 
 log = logging.getLogger("ranktide.sources")
+
+
+class SourceError(RuntimeError):
+    """A source that cannot be reached or used (exit code 2); the message names it and the reason."""
+
+
+class RateLimited(logging.Filter):
+    """Let a message through at most once per ``every`` seconds, counting the copies held back.
+
+    librdkafka retries an unreachable broker several times a second and logs
+    every failure; messages that differ only in numbers count as the same.
+    """
+
+    def __init__(self, every: float = 10.0) -> None:
+        super().__init__()
+        self.every = every
+        self._last: dict[str, float] = {}
+        self._held: dict[str, int] = {}
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        text = record.getMessage()
+        key = re.sub(r"\d+", "#", text)[:200]
+        now = time.monotonic()
+        if now - self._last.get(key, -math.inf) < self.every:
+            self._held[key] = self._held.get(key, 0) + 1
+            return False
+        if len(self._last) > 1000:
+            self._last.clear()
+        self._last[key] = now
+        held = self._held.pop(key, 0)
+        if held:
+            record.msg, record.args = f"{text} ({held} more like it not shown)", ()
+        return True
+
+
+#: librdkafka's own log: warnings and errors only, each kind at most once per 10 s.
+KAFKA_LOG = logging.getLogger("ranktide.kafka")
+KAFKA_LOG.setLevel(logging.WARNING)
+KAFKA_LOG.addFilter(RateLimited())
+
+
+def kafka_config(bootstrap: str, properties: dict[str, str], **settings) -> dict:
+    """Configuration of a Kafka client: ours, then the user's librdkafka properties.
+
+    ``log_level`` 4 keeps librdkafka at warnings; its lines go through
+    :data:`KAFKA_LOG` (rate-limited) instead of straight to stderr.
+    """
+    return {"bootstrap.servers": bootstrap, "log_level": 4, "logger": KAFKA_LOG, **settings, **properties}
+
+
+def wait_for_brokers(bootstrap: str, properties: dict[str, str], timeout: float) -> None:
+    """Return once the brokers answer a metadata request; SourceError after ``timeout`` seconds."""
+    from confluent_kafka import KafkaException
+    from confluent_kafka.admin import AdminClient
+
+    errors: list[str] = []
+    # the probe's own failures are summed up in the one error below, not logged one by one
+    quiet = logging.getLogger("ranktide.kafka.probe")
+    quiet.setLevel(logging.CRITICAL)
+    admin = AdminClient(kafka_config(bootstrap, properties, logger=quiet,
+                                     error_cb=lambda err: errors.append(err.str())))
+    try:
+        admin.list_topics(timeout=timeout)
+    except KafkaException as exc:
+        admin.poll(0.5)  # serve the error callback: it names the cause (refused, unknown host, ...)
+        reason = errors[-1] if errors else exc.args[0].str()
+        raise SourceError(f"cannot reach the Kafka brokers {bootstrap} within {timeout:g} s "
+                          f"(connect_timeout): {reason}") from None
 
 #: Header that marks a Kafka message holding an Arrow IPC stream of events.
 ARROW_CONTENT_TYPE = "application/vnd.apache.arrow.stream"
@@ -453,6 +523,7 @@ class KafkaSource:
             "enable.auto.offset.store": False,
             "auto.offset.reset": "earliest",
             "enable.partition.eof": True,
+            "log_level": 4,
             "message.max.bytes": max(limits.max_record_bytes + 65536, 1000000),
             # large, eager fetches: measured twice the messages per second of the defaults
             "fetch.wait.max.ms": 10,
@@ -462,7 +533,7 @@ class KafkaSource:
             "queued.max.messages.kbytes": 1 << 20,
             **properties,
         }
-        self._consumer = Consumer(conf, logger=log)
+        self._consumer = Consumer(conf, logger=KAFKA_LOG)
         self._next: dict[tuple[str, int], int] = {}
         self._eof: set[tuple[str, int]] = set()
         self._assigned: set[tuple[str, int]] = set()
@@ -615,14 +686,14 @@ class OwnerLock:
             "heartbeat.interval.ms": 1_000,
             "enable.auto.commit": False,
             **properties,
-        }, logger=log)
+        }, logger=KAFKA_LOG)
         self._consumer.subscribe([topic], on_assign=self._assign, on_revoke=self._revoke, on_lost=self._revoke)
 
     def _ensure_topic(self, bootstrap: str, properties: dict[str, str]) -> None:
         from confluent_kafka import KafkaError, KafkaException
         from confluent_kafka.admin import AdminClient, NewTopic
 
-        admin = AdminClient({"bootstrap.servers": bootstrap, **properties})
+        admin = AdminClient(kafka_config(bootstrap, properties))
         futures = admin.create_topics([NewTopic(self.topic, num_partitions=1)], request_timeout=30)
         try:
             futures[self.topic].result(timeout=30)

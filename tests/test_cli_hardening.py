@@ -18,6 +18,7 @@ import time
 from pathlib import Path
 
 import networkx as nx
+import numpy as np
 import pyarrow.parquet as pq
 import pytest
 
@@ -140,3 +141,166 @@ def test_replay_applies_a_last_record_without_newline(tmp_path: Path) -> None:
     done = _run("replay", str(log), "--out", str(tmp_path / "snaps"), "--quiet")
     assert done.returncode == 0, done.stderr
     assert _manifest(newest_snapshot(tmp_path / "snaps"))["events_applied"] == len(EVENTS)
+
+
+# ---------------------------------------------------------------- item 4: outputs, options, exit codes
+
+
+@pytest.fixture
+def small_log(tmp_path: Path) -> Path:
+    log = tmp_path / "events.jsonl"
+    log.write_bytes(_lines(EVENTS) + b"\nnot json\n")
+    return log
+
+
+def _run_file(log: Path, root: Path | str, *extra: str) -> subprocess.CompletedProcess:
+    return _run("run", "--source", f"file:{log}", "--out", str(root), "--metrics", "", "--stop-at-end",
+                "--quiet", *extra)
+
+
+def test_run_into_an_impossible_root_exits_3(small_log: Path) -> None:
+    _one_line_error(_run_file(small_log, "/proc/x/snaps"), 3, "/proc/x")
+
+
+def test_demo_into_an_impossible_folder_exits_3() -> None:
+    _one_line_error(_run("demo", "--out", "/proc/x"), 3, "/proc/x")
+
+
+def test_run_with_an_impossible_rejects_file_exits_3(small_log: Path, tmp_path: Path) -> None:
+    _one_line_error(_run_file(small_log, tmp_path / "snaps", "--rejects", "/proc/x/r.jsonl"), 3, "/proc/x/r.jsonl")
+
+
+def test_rejects_file_prefix_names_the_path(small_log: Path, tmp_path: Path) -> None:
+    target = tmp_path / "bad" / "r.jsonl"
+    proc = ranktide("run", "--source", f"file:{small_log}", "--out", str(tmp_path / "snaps"), "--metrics", "",
+                    "--stop-at-end", "--quiet", "--rejects", f"file:{target}", cwd=tmp_path)
+    _, err = proc.communicate(timeout=60)
+    assert proc.returncode == 0, err.decode()
+    rejects = [json.loads(line) for line in target.read_text().splitlines()]
+    assert [r["line"] for r in rejects] == [5]
+    assert not [p for p in tmp_path.rglob("*") if p.name.startswith("file:")]
+
+
+def test_audit_with_an_impossible_plot_exits_3_before_the_work(tmp_path: Path) -> None:
+    log = tmp_path / "events.jsonl"
+    log.write_bytes(_lines(EVENTS))
+    assert _run("replay", str(log), "--out", str(tmp_path / "snaps"), "--quiet").returncode == 0
+    done = _run("audit", str(tmp_path / "snaps"), "--plot", "/proc/x/a.png")
+    _one_line_error(done, 3, "/proc/x")
+    assert "audit of" not in done.stdout  # refused before the recompute
+
+
+@pytest.mark.parametrize("args, words", [
+    (["--micro-batch", "0"], ["--micro-batch"]),
+    (["--metrics", "notaport"], ["--metrics", "notaport"]),
+    (["--metrics", "127.0.0.1:99999"], ["--metrics"]),
+    (["--keep-snapshots", "0"], ["--keep-snapshots"]),
+    (["--tolerance", "x"], ["--tolerance", "'x'"]),
+    (["--damping", "1.5"], ["--damping"]),
+    (["--snapshot-interval", "-1"], ["--snapshot-interval"]),
+])
+def test_bad_run_options_are_one_line_exit_2(small_log: Path, tmp_path: Path, args: list[str], words: list[str]) -> None:
+    line = _one_line_error(_run_file(small_log, tmp_path / "snaps", *args), 2, *words)
+    assert "_positive" not in line and "_damping" not in line and "invalid" not in line
+    assert not (tmp_path / "snaps").exists()
+
+
+@pytest.mark.parametrize("setting, value", [("micro_batch", "0"), ("metrics", "notaport"), ("poll_records", "-5")])
+def test_bad_settings_from_the_environment_are_one_line_exit_2(small_log: Path, tmp_path: Path, setting: str,
+                                                              value: str) -> None:
+    done = _run("run", "--source", f"file:{small_log}", "--out", str(tmp_path / "snaps"), "--stop-at-end",
+                env={f"RANKTIDE_{setting.upper()}": value})
+    _one_line_error(done, 2, setting)
+
+
+def test_replay_into_an_impossible_folder_exits_3(small_log: Path) -> None:
+    _one_line_error(_run("replay", str(small_log), "--out", "/proc/x/snaps", "--quiet"), 3, "/proc/x")
+
+
+@pytest.fixture
+def tiny_disk(tmp_path: Path):
+    """A 512 KiB tmpfs (needs root and mount rights, as on this project's machines)."""
+    mount_point = tmp_path / "disk"
+    mount_point.mkdir()
+    done = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=512k", "tmpfs", str(mount_point)],
+                          capture_output=True, text=True)
+    if done.returncode != 0:
+        pytest.skip(f"cannot mount a small tmpfs here: {done.stderr.strip()}")
+    try:
+        yield mount_point
+    finally:
+        subprocess.run(["umount", "-l", str(mount_point)], check=False)
+
+
+def test_replay_onto_a_full_disk_exits_3_and_leaves_no_half_snapshot(tiny_disk: Path, tmp_path: Path) -> None:
+    log = tmp_path / "big.jsonl"
+    rng = np.random.default_rng(3)
+    ids = [f"{v:016x}" for v in rng.integers(0, 2**62, 60_000)]  # incompressible: far more than 512 KiB
+    log.write_text("".join(json.dumps({"op": "insert", "src": ids[i], "dst": ids[(i * 7919) % len(ids)]}) + "\n"
+                           for i in range(len(ids))))
+    root = tiny_disk / "snaps"
+    _one_line_error(_run("replay", str(log), "--out", str(root), "--quiet"), 3, "No space left on device")
+    assert not [p for p in root.iterdir() if p.name.startswith("snap-") or p.name.endswith(".partial")]
+
+
+# ---------------------------------------------------------------- item 5: CSV rows
+
+
+def test_malformed_csv_rows_are_rejected_one_by_one(tmp_path: Path) -> None:
+    log = tmp_path / "events.csv"
+    log.write_text("op,src,dst,weight,ts\n"
+                   "insert,a,b,1.0,\n"
+                   "insert,b\n"                         # line 3: two columns
+                   "insert,b,c,2.0,\n"
+                   "insert,c,a,1.0,,extra,cells\n"      # line 5: seven columns
+                   '"insert,c,d\n'                      # line 6: an unterminated quote... 
+                   "insert,c,d,1.0,\n")
+    root = tmp_path / "snaps"
+    done = _run("replay", str(log), "--out", str(root), "--quiet")
+    assert done.returncode == 0, done.stderr
+    rejects = [json.loads(line) for line in (root / "rejects.jsonl").read_text().splitlines()]
+    lines = [r["line"] for r in rejects]
+    assert 3 in lines and 5 in lines
+    assert all(r["source"].endswith("events.csv") and r["reason"] for r in rejects)
+    assert any("column" in r["reason"] for r in rejects)
+    m = _manifest(newest_snapshot(root))
+    assert m["events_applied"] >= 3
+    assert m["events_applied"] + m["events_rejected"] == 6
+
+
+# ---------------------------------------------------------------- item 4: unreachable brokers
+
+
+def _closed_port() -> int:
+    """A loopback port where nothing listens (bound, then released)."""
+    import socket
+
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+@pytest.mark.parametrize("command", ["run", "record"])
+def test_unreachable_brokers_give_one_error_after_the_connect_timeout(tmp_path: Path, command: str) -> None:
+    port = _closed_port()
+    url = f"kafka://127.0.0.1:{port}/edges"
+    if command == "run":
+        args = ["run", "--source", url, "--out", str(tmp_path / "snaps"), "--metrics", "", "--connect-timeout", "3"]
+    else:
+        args = ["record", "--source", url, "--out", str(tmp_path / "log.parquet"), "--connect-timeout", "3"]
+    started = time.monotonic()
+    done = _run(*args, timeout=120)
+    _one_line_error(done, 2, f"127.0.0.1:{port}", "3 s")
+    assert time.monotonic() - started < 60
+    assert len(done.stderr.splitlines()) <= 12, done.stderr  # librdkafka's retries are not all printed
+
+
+def test_connect_timeout_comes_from_the_environment_and_configuration(tmp_path: Path) -> None:
+    from ranktide.stream.config import ConfigError, load_config
+
+    cfg_file = tmp_path / "ranktide.toml"
+    cfg_file.write_text('source = "kafka://127.0.0.1:1/edges"\nconnect_timeout = 7.5\n')
+    assert load_config(cfg_file, env={}).connect_timeout == 7.5
+    assert load_config(cfg_file, env={"RANKTIDE_CONNECT_TIMEOUT": "2"}).connect_timeout == 2.0
+    with pytest.raises(ConfigError, match="connect_timeout"):
+        load_config(cfg_file, env={"RANKTIDE_CONNECT_TIMEOUT": "0"})
