@@ -44,7 +44,8 @@ class _Version(argparse.Action):
             text = version("ranktide")
         except PackageNotFoundError:
             text = "unknown (not installed)"
-        parser.exit(0, f"ranktide {text}\n")
+        print(f"ranktide {text}")
+        parser.exit(0)
 
 
 def _log_level(text: str) -> str:

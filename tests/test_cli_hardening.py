@@ -336,3 +336,77 @@ def test_malformed_csv_rows_across_many_chunks_keep_their_lines_and_resume(tmp_p
     assert _manifest(newest_snapshot(part))["events_applied"] == len(events)
     assert (pq.read_table(newest_snapshot(part) / "edges.parquet")
             .equals(pq.read_table(newest_snapshot(whole) / "edges.parquet")))
+
+
+# ---------------------------------------------------------------- item 7: help, log level, version, example
+
+
+READING_COMMANDS = {"status", "top", "score", "snapshots"}  # their help lines are checked with them
+
+
+def test_every_command_and_option_has_a_help_line() -> None:
+    import argparse
+
+    from ranktide.stream.cli import build_parser
+
+    parser = build_parser()
+    sub = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
+    described = {a.dest: a.help for a in sub._choices_actions}
+    missing = [name for name in sub.choices if not described.get(name)]
+    for name, command in sub.choices.items():
+        if name in READING_COMMANDS:
+            continue
+        missing += [f"{name} {'/'.join(a.option_strings) or a.dest}" for a in command._actions
+                    if not a.help or a.help == argparse.SUPPRESS]
+    missing += [f"ranktide {'/'.join(a.option_strings)}" for a in parser._actions
+                if a.option_strings and not a.help]
+    assert not missing, missing
+
+
+def test_replay_help_mentions_the_snapshot_series() -> None:
+    done = _run("replay", "--help")
+    assert done.returncode == 0
+    text = " ".join(done.stdout.split())
+    assert "--snapshot-every" in text and "series" in text
+
+
+def test_log_level_after_the_command_and_unknown_levels(tmp_path: Path) -> None:
+    log = tmp_path / "events.jsonl"
+    log.write_bytes(_lines(EVENTS))
+    root = tmp_path / "snaps"
+    quiet = _run("run", "--source", f"file:{log}", "--out", str(root), "--metrics", "", "--stop-at-end", "--quiet",
+                 "--log-level", "warning")
+    assert quiet.returncode == 0, quiet.stderr
+    assert " INFO " not in quiet.stderr
+    loud = _run("--log-level", "INFO", "replay", str(log), "--out", str(tmp_path / "r"), "--log-level", "DEBUG")
+    assert loud.returncode == 0, loud.stderr
+    for args in (["--log-level", "LOUD", "replay", str(log), "--out", str(tmp_path / "x")],
+                 ["replay", str(log), "--out", str(tmp_path / "x"), "--log-level", "LOUD"]):
+        _one_line_error(_run(*args), 2, "--log-level", "LOUD", "DEBUG, INFO, WARNING, ERROR")
+    assert not (tmp_path / "x").exists()
+
+
+def test_version() -> None:
+    from importlib.metadata import version
+
+    done = _run("--version")
+    assert done.returncode == 0
+    assert done.stdout.strip() == f"ranktide {version('ranktide')}"
+
+
+def test_the_example_configuration_is_complete_and_loads_with_the_real_loader() -> None:
+    import dataclasses
+    import tomllib
+
+    from ranktide.stream.config import ServiceConfig, load_config
+
+    example = REPO / "stream" / "ranktide.example.toml"
+    keys = set(tomllib.loads(example.read_text(encoding="utf-8")))
+    assert keys == {f.name for f in dataclasses.fields(ServiceConfig)}  # every setting, nothing unknown
+    cfg = load_config(example, env={})
+    defaults = ServiceConfig()
+    for f in dataclasses.fields(ServiceConfig):
+        if f.name != "source":
+            assert getattr(cfg, f.name) == getattr(defaults, f.name), f.name  # it states the defaults
+    assert cfg.source.startswith("kafka://")
+    assert "ranktide.example.toml" in (REPO / "README.md").read_text(encoding="utf-8")
