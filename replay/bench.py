@@ -409,6 +409,25 @@ def igraph_prpack(ctx: Context) -> Measure:
     return Measure(t, np.asarray(result, dtype=np.float64), None, None, prep)
 
 
+#: Contenders that need a bench extra: name -> the module they import.
+OPTIONAL = {"networkx": "networkx", "igraph_prpack": "igraph"}
+#: How to install the bench extras (from a clone of the repository).
+INSTALL_EXTRAS = "python3 -m pip install -e '.[bench]'"
+
+
+def missing_contenders() -> dict[str, str]:
+    """Contenders whose library cannot be imported: name -> the module that is missing."""
+    import importlib
+
+    missing = {}
+    for name, module in OPTIONAL.items():
+        try:
+            importlib.import_module(module)
+        except ImportError:
+            missing[name] = module
+    return missing
+
+
 CONTENDERS: dict[str, Callable[[Context], Measure]] = {
     "warm_start": warm_start,
     "warm_start_own": warm_start,
@@ -923,14 +942,17 @@ def measure_e2e(edges: EdgeSet, sampler: PowerLawSampler, count: int, snapshot: 
 # ====================================================================== real graph
 
 
-def measure_real_graph(repeats: int, seed: int) -> dict:
-    """The bundled real graph through the same contenders (small batches)."""
-    g = bundled_real_graph()
+def measure_real_graph(repeats: int, seed: int, missing: dict[str, str]) -> dict:
+    """The bundled real graph through the same installed contenders (small batches)."""
+    try:
+        g = bundled_real_graph()
+    except ImportError as exc:
+        return {"skipped": f"no real graph: neither onadata nor NetworkX is installed ({exc}); {INSTALL_EXTRAS}"}
     uniform = PowerLawSampler(g.n, np.arange(1, g.n + 1, dtype=np.float64), np.arange(1, g.n + 1, dtype=np.float64))
     loaded = load_graph(g.n, g.src, g.dst, g.weight, uniform)
     tr = start_tracker(loaded, seed)
     sizes = [b for b in REAL_GRAPH_BATCHES if 5 * b <= g.src.size]
-    rows = run_batches(tr, sizes, repeats, list(CONTENDERS), ["global"], "real graph")
+    rows = run_batches(tr, sizes, repeats, [n for n in CONTENDERS if n not in missing], ["global"], "real graph")
     return {"name": g.name, "description": g.description, "load": loaded.info, "batches": rows,
             "note": "the largest real graph found inside a registry package: onadata 0.1 (PyPI) ships the "
                     "Wikipedia vote network; without that package the bench falls back to NetworkX's "
@@ -951,10 +973,11 @@ def generated(size: str, seed: int) -> tuple[np.ndarray, np.ndarray, PowerLawSam
     return src, dst, sampler, info
 
 
-def contenders_for(size: str) -> list[str]:
-    """NetworkX only on tiny and small graphs."""
+def contenders_for(size: str, missing: dict[str, str] | None = None) -> list[str]:
+    """NetworkX only on tiny and small graphs; none whose library is ``missing``."""
     names = ["warm_start", "warm_start_own", "cold_start", "igraph_prpack"]
-    return names + ["networkx"] if size in ("tiny", "small") else names
+    names = names + ["networkx"] if size in ("tiny", "small") else names
+    return [n for n in names if n not in (missing or {})]
 
 
 def scaling_run(size: str, sizes: list[int], repeats: int, seed: int) -> list[dict]:
@@ -983,6 +1006,11 @@ def run_all(args: argparse.Namespace, folder: Path) -> dict:
         "size": args.size, "batches": args.batches, "repeats": args.repeats, "seed": args.seed,
         "profiles": args.profiles, "damping": DAMPING, "tolerance": TOLERANCE, "reference_tolerance": REFERENCE_TOL,
         "networkx_tol": "(1 - damping) * 1e-6 / N", "insert_share": INSERT_SHARE}}
+    missing = missing_contenders()
+    report["missing_contenders"] = {name: f"{module} is not installed: {INSTALL_EXTRAS}"
+                                    for name, module in missing.items()}
+    for name, module in missing.items():
+        _say(f"skipping {LABELS[name]}: {module} is not installed (install the bench extras: {INSTALL_EXTRAS})")
     _say("compiling kernels on a small graph")
     report["settings"]["kernel_warm_up_seconds"] = warm_up_kernels()
     _say(f"generating the {args.size} graph")
@@ -993,7 +1021,7 @@ def run_all(args: argparse.Namespace, folder: Path) -> dict:
     report["load"] = loaded.info
     report["load"]["reserved_edge_room"] = reserve_for(loaded, args.batches, args.repeats)
     tr = start_tracker(loaded, args.seed)
-    report["batches"] = run_batches(tr, args.batches, args.repeats, contenders_for(args.size), ["global"],
+    report["batches"] = run_batches(tr, args.batches, args.repeats, contenders_for(args.size, missing), ["global"],
                                     f"update batches ({args.size})")
     report["scaling"] = {args.size: _scaling_rows(report["batches"])}
     if args.size == "large":
@@ -1016,7 +1044,7 @@ def run_all(args: argparse.Namespace, folder: Path) -> dict:
     del tr, loaded
     report["replay"] = measure_replay(src0, dst0, folder)
     _say("bundled real graph")
-    report["real_graph"] = measure_real_graph(args.repeats, args.seed)
+    report["real_graph"] = measure_real_graph(args.repeats, args.seed, missing)
     if args.skip_e2e:
         report["end_to_end"] = {"skipped": "--skip-e2e"}
     else:
@@ -1254,6 +1282,8 @@ def _e2e_lines(e: dict) -> list[str]:
 
 
 def _real_lines(r: dict) -> list[str]:
+    if "skipped" in r:
+        return [f"Real graph: skipped, {r['skipped']}."]
     names = _present(r["batches"])
     heads = ["events/batch"] + [LABELS[n] for n in ["ranktide"] + names] + ["ranktide error", "ranktide bound"]
     rows = [[f"{b['batch']:,}"] + [_fmt_time(b[n]["seconds_per_batch"]) for n in ["ranktide"] + names]
@@ -1277,6 +1307,7 @@ def render(report: dict) -> str:
         f"NetworkX with tol = (1-d)*1e-6/N; kernels compiled beforehand ({_fmt_time(s['kernel_warm_up_seconds'])})",
         "",
     ]
+    out += [f"Not measured: {LABELS[name]} ({why})" for name, why in report.get("missing_contenders", {}).items()]
     out += _graph_lines(report) + [""]
     out += [f"Update batches of mixed events (80 % inserts of new edges drawn like the graph's, 20 % deletes of "
             f"present edges, shuffled) on the {s['size']} graph", ""]

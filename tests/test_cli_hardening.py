@@ -410,3 +410,41 @@ def test_the_example_configuration_is_complete_and_loads_with_the_real_loader() 
             assert getattr(cfg, f.name) == getattr(defaults, f.name), f.name  # it states the defaults
     assert cfg.source.startswith("kafka://")
     assert "ranktide.example.toml" in (REPO / "README.md").read_text(encoding="utf-8")
+
+
+# ---------------------------------------------------------------- item 4: bench on the base install
+
+BLOCKER = '''
+import sys
+
+class Blocker:
+    """Make the bench extras look uninstalled: their import fails as if they were missing."""
+
+    def find_spec(self, name, path=None, target=None):
+        if name.split(".")[0] in ("igraph", "networkx", "onadata"):
+            raise ModuleNotFoundError(f"No module named {name!r}")
+        return None
+
+sys.meta_path.insert(0, Blocker())
+'''
+
+
+def test_bench_without_the_extras_runs_what_is_installed_and_names_the_rest(tmp_path: Path) -> None:
+    (tmp_path / "sitecustomize.py").write_text(BLOCKER)
+    env = {**os.environ, "PYTHONPATH": os.pathsep.join([str(tmp_path), os.environ.get("PYTHONPATH", "")])}
+    probe = subprocess.run([sys.executable, "-c", "import igraph"], env=env, capture_output=True, text=True)
+    assert probe.returncode != 0  # the blocker is active in the child
+    cmd = [sys.executable, "-m", "ranktide.stream.cli", "bench", "--size", "tiny", "--batches", "1,10",
+           "--repeats", "1", "--profiles", "0", "--json", "--skip-e2e"]
+    done = subprocess.run(cmd, env=env, capture_output=True, text=True, timeout=600)
+    assert done.returncode == 0, done.stderr[-3000:]
+    assert "Traceback" not in done.stderr
+    report = json.loads(done.stdout)
+    assert set(report["missing_contenders"]) == {"networkx", "igraph_prpack"}
+    for name in ("networkx", "igraph"):
+        assert f"{name} is not installed" in done.stderr and "pip install" in done.stderr
+    rows = report["batches"]
+    assert [r["batch"] for r in rows] == [1, 10]
+    assert all("warm_start" in r and "networkx" not in r and "igraph_prpack" not in r for r in rows)
+    assert all(r["ranktide"]["max_error"] <= r["ranktide"]["max_certified_bound"] + 1e-10 for r in rows)
+    assert "skipped" in report["real_graph"]
