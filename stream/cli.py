@@ -294,6 +294,9 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     except OutputError as exc:
         print(f"ranktide demo: error: {exc}", file=sys.stderr)
         return 3
+    except OSError as exc:  # everything the demo reads it has written itself
+        print(f"ranktide demo: error: cannot write {exc.filename or args.out}: {exc.strerror or exc}", file=sys.stderr)
+        return 3
 
 
 def _cmd_bench(args: argparse.Namespace) -> int:

@@ -448,3 +448,10 @@ def test_bench_without_the_extras_runs_what_is_installed_and_names_the_rest(tmp_
     assert all("warm_start" in r and "networkx" not in r and "igraph_prpack" not in r for r in rows)
     assert all(r["ranktide"]["max_error"] <= r["ranktide"]["max_certified_bound"] + 1e-10 for r in rows)
     assert "skipped" in report["real_graph"]
+
+
+def test_replay_whose_rejects_fill_the_disk_exits_3(tiny_disk: Path, tmp_path: Path) -> None:
+    log = tmp_path / "bad.jsonl"
+    log.write_text("".join(f'{{"op": "insert", "src": "node-{i:08d}-without-a-destination"}}\n' for i in range(20_000)))
+    _one_line_error(_run("replay", str(log), "--out", str(tiny_disk / "snaps"), "--quiet"), 3,
+                    "rejects file", "No space left on device")
