@@ -94,7 +94,7 @@ def test_run_stop_at_end_applies_a_last_record_without_newline(tmp_path: Path) -
     log.write_bytes(_lines(EVENTS))  # no newline after the last record
     root = tmp_path / "snaps"
     done = _run("run", "--source", f"file:{log}", "--out", str(root), "--metrics", "", "--stop-at-end",
-                "--quiet", timeout=60)
+                "--quiet", "--tolerance", "1e-6", timeout=60)
     assert done.returncode == 0, done.stderr[-3000:]
     snap = newest_snapshot(root)
     assert _manifest(snap)["events_applied"] == len(EVENTS)
@@ -110,7 +110,7 @@ def test_a_followed_file_keeps_a_partial_line_until_it_is_complete(tmp_path: Pat
     log.write_bytes(whole + last[:10])
     root = tmp_path / "snaps"
     proc = ranktide("run", "--source", f"file:{log}", "--out", str(root), "--metrics", "",
-                    "--snapshot-interval", "0.2", "--quiet")
+                    "--snapshot-interval", "0.2", "--quiet", "--tolerance", "1e-6")
 
     def covered() -> int:
         if not root.is_dir() or not any(p.name.startswith("snap-") for p in root.iterdir()):
@@ -256,7 +256,7 @@ def test_malformed_csv_rows_are_rejected_one_by_one(tmp_path: Path) -> None:
                    "insert,c,d,1.0,\n"
                    "insert\n")                          # line 7: one column, at the end
     root = tmp_path / "snaps"
-    done = _run("replay", str(log), "--out", str(root), "--quiet")
+    done = _run("replay", str(log), "--out", str(root), "--quiet", "--tolerance", "1e-6")
     assert done.returncode == 0, done.stderr
     rejects = [json.loads(line) for line in (root / "rejects.jsonl").read_text().splitlines()]
     lines = [r["line"] for r in rejects]
