@@ -455,3 +455,32 @@ def test_replay_whose_rejects_fill_the_disk_exits_3(tiny_disk: Path, tmp_path: P
     log.write_text("".join(f'{{"op": "insert", "src": "node-{i:08d}-without-a-destination"}}\n' for i in range(20_000)))
     _one_line_error(_run("replay", str(log), "--out", str(tiny_disk / "snaps"), "--quiet"), 3,
                     "rejects file", "No space left on device")
+
+
+# ---------------------------------------------------------------- issue 11: a lean start-up
+
+HEAVY = ("numba", "numpy", "pyarrow", "scipy", "confluent_kafka", "matplotlib", "ranktide.solver",
+         "ranktide.replay.bench")
+
+
+@pytest.mark.parametrize("argv", [["--help"], ["bench", "--help"], ["run", "--help"], ["status", "ROOT"]])
+def test_start_up_imports_no_heavy_module(tmp_path: Path, argv: list[str]) -> None:
+    """``--help`` and ``status`` answer without NumPy, pyarrow, numba or the benchmark (a fast start-up)."""
+    log = tmp_path / "events.jsonl"
+    log.write_bytes(_lines(EVENTS))
+    assert _run("replay", str(log), "--out", str(tmp_path / "snaps"), "--quiet").returncode == 0
+    argv = [str(tmp_path / "snaps") if a == "ROOT" else a for a in argv]
+    code = ("import contextlib, io, sys\n"
+            "from ranktide.stream.cli import main\n"
+            "with contextlib.redirect_stdout(io.StringIO()) as out:\n"
+            "    try:\n"
+            f"        code = main({argv!r})\n"
+            "    except SystemExit as exc:\n"
+            "        code = exc.code\n"
+            "heavy = sorted(m for m in sys.modules if m in " + repr(HEAVY) + " or m.startswith(" + repr(tuple(h + '.' for h in HEAVY)) + "))\n"
+            "print(code, len(out.getvalue()), *heavy)\n")
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
+    assert done.returncode == 0, done.stderr
+    exit_code, printed, *heavy = done.stdout.split()
+    assert exit_code in ("0", "None") and int(printed) > 0
+    assert heavy == [], heavy
