@@ -469,7 +469,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("root", type=Path, help="snapshot root folder")
     p.add_argument("--snapshot", metavar="NAME", help="audit this snapshot (default: the newest)")
     p.add_argument("--all", action="store_true", help="audit every snapshot in the root")
-    p.add_argument("-k", type=int, default=100, help="size of the top set for overlap and Kendall tau (default 100)")
+    p.add_argument("-k", type=_positive_int, default=100, help="size of the top set for overlap and Kendall tau (default 100)")
     p.add_argument("--json", action="store_true", help="print the results as JSON")
     p.add_argument("--plot", type=Path, metavar="FILE.png", help="plot measured error and bound against events applied")
     p.set_defaults(func=_cmd_audit)

@@ -484,3 +484,25 @@ def test_start_up_imports_no_heavy_module(tmp_path: Path, argv: list[str]) -> No
     exit_code, printed, *heavy = done.stdout.split()
     assert exit_code in ("0", "None") and int(printed) > 0
     assert heavy == [], heavy
+
+
+def test_librdkafka_lines_are_rate_limited() -> None:
+    """The filter on librdkafka's log lets one line of a kind through per period and counts the rest."""
+    import logging
+
+    from ranktide.stream.sources import KAFKA_LOG, RateLimited
+
+    limiter = RateLimited(every=3600)
+
+    def record(text: str) -> logging.LogRecord:
+        return logging.LogRecord("ranktide.kafka", logging.ERROR, __file__, 1, text, (), None)
+
+    kept = [r for r in (record(f"FAIL 127.0.0.1:{9000 + i}: Connect failed after {i}ms") for i in range(580))
+            if limiter.filter(r)]
+    assert len(kept) == 1  # the same message with other numbers is the same kind
+    assert limiter.filter(record("another kind of failure"))
+    limiter._last = {k: v - 7200 for k, v in limiter._last.items()}  # the period has passed
+    again = record("FAIL 127.0.0.1:9999: Connect failed after 5ms")
+    assert limiter.filter(again) and "579 more like it not shown" in again.getMessage()
+    assert any(isinstance(f, RateLimited) for f in KAFKA_LOG.filters)
+    assert KAFKA_LOG.level == logging.WARNING
