@@ -553,7 +553,7 @@ class KafkaSource:
             if not missing:
                 return [(t, p) for t in self.topics for p in sorted(meta.topics[t].partitions)]
             if time.monotonic() > deadline:
-                raise RuntimeError(f"Kafka topic(s) {', '.join(missing)} not found at {self.bootstrap}")
+                raise SourceError(f"Kafka topic(s) {', '.join(missing)} not found at {self.bootstrap}")
             time.sleep(0.5)
 
     def seek(self, positions: dict) -> None:
@@ -626,7 +626,7 @@ class KafkaSource:
                 if self._next.get(key, 0) >= offset:
                     self._eof.add(key)
             elif fatal:
-                raise RuntimeError(f"Kafka consumer failed: {text}")
+                raise SourceError(f"Kafka consumer failed: {text}")
             else:
                 log.warning("Kafka: %s", text)
         return fetched.chunk
@@ -700,7 +700,7 @@ class OwnerLock:
             log.info("created owner topic %s", self.topic)
         except KafkaException as exc:
             if exc.args[0].code() != KafkaError.TOPIC_ALREADY_EXISTS:
-                raise RuntimeError(f"cannot create owner topic {self.topic}: {exc.args[0].str()}") from exc
+                raise SourceError(f"cannot create owner topic {self.topic}: {exc.args[0].str()}") from exc
 
     def _assign(self, consumer, partitions) -> None:
         if partitions:
