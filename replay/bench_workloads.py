@@ -133,6 +133,13 @@ def warm_up_kernels() -> float:
     eng.apply(np.full(3, OP_SEED, np.int8), np.arange(3), np.full(3, row), np.ones(3))
     eng.settle()
     eng.recompute_residual()
+    eng.set_targets(rtol=1e-3, tolerance=None)  # the kernels of the per-node contract
+    for size in (10, 2_000):
+        b = mixed_batch(size, edges, sampler, rng)
+        eng.apply(b.op, b.src, b.dst, b.weight)
+        eng.settle()
+        edges.update(b.inserted, b.deleted)
+    eng.certificate("warm-up")
     copy_of = Engine(DAMPING, rtol=None, tolerance=TOLERANCE)  # the bulk load of a restore
     copy_of.restore(eng.n_nodes, eng.graph.edge_list(), {p: eng.P[eng.profile_index(p), : eng.n_nodes]
                                                           for p in eng.profiles},
