@@ -255,7 +255,7 @@ def _profile_vectors(table, manifest: dict, ids, name: str) -> tuple[np.ndarray,
     return scores, bounds
 
 
-def _read_scores(path: Path) -> tuple[dict, "pa.Table"]:
+def _read_scores(path: Path) -> tuple[dict, object]:
     from ranktide.stream.snapshots import read_manifest, verify
 
     manifest = read_manifest(path)

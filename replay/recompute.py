@@ -38,7 +38,6 @@ from ranktide.solver.recompute import Targets, recompute
 from ranktide.stream.snapshots import (Counters, SnapshotError, contract_facts, read_manifest, snapshot_dirs,
                                        snapshot_tables, verify, write_prepared_snapshot)
 
-from ranktide.replay.recompute_options import ENGINES  # noqa: F401 (re-exported)
 
 
 class RecomputeError(RuntimeError):

@@ -27,6 +27,7 @@ import contextlib
 import math
 import shutil
 import time
+from dataclasses import dataclass
 from pathlib import Path
 
 from ranktide.solver import GLOBAL
@@ -211,13 +212,24 @@ class _Profile:
                 "unlisted_bound": 0.0 if glob else fin(self.unlisted)}
 
 
-def recompute_spark(spark, inp: RecomputeInput, out: Path, settings: Settings, staging: str | None = None,
-                    progress: bool = True, max_iter: int = 10_000) -> Path:
-    """Recompute every profile on Spark and write the snapshot into ``out``; returns its folder."""
+@dataclass
+class _Graph:
+    """The input on Spark: node ids, ``P`` by source, the first iterate, and what the output needs."""
+
+    edges: object      # (src, dst, weight) as read
+    ids: object        # (name, id), ids fixed by a checkpoint
+    P: object          # (sid, did, p), hash-partitioned on sid
+    X: object          # (id, s0.., x0..), hash-partitioned on id alike
+    seeded: object     # (node, profile, weight, id) of the non-zero seeds
+    profiles: list[str]
+    n_nodes: int
+    n_edges: int
+
+
+def _load(spark, inp: RecomputeInput, lineage: "Lineage", damping: float) -> _Graph:
+    """Read and check the input, fix node ids once, build ``P`` and the first iterate ``a s``."""
     from pyspark.sql import functions as F
 
-    started = time.perf_counter()
-    lineage = Lineage(spark)
     edges = read_edges(spark, inp)
     seeds = _seeds_frame(spark, inp)
     names = lineage.fix(_node_names(spark, inp, edges, seeds).withColumn("id", F.monotonically_increasing_id()))
@@ -231,56 +243,68 @@ def recompute_spark(spark, inp: RecomputeInput, out: Path, settings: Settings, s
     P = lineage.fix(weighted.join(out_w, "sid").select("sid", "did", (F.col("weight") / F.col("out_w")).alias("p"))
                     .repartition(parts, "sid"))
     profiles = [GLOBAL] + sorted(n for n in inp.seeds if n != GLOBAL)
+    k = len(profiles)
     s_cols = [F.lit(1.0).alias("s0")]
     seeded = seeds.filter(F.col("weight") != 0.0).join(ids.withColumnRenamed("name", "node"), "node")
-    if len(profiles) > 1:
+    state = names.select("id")
+    if k > 1:
         seed_sums = seeded.groupBy("id").agg(*[
             F.sum(F.when(F.col("profile") == name, F.col("weight")).otherwise(0.0)).alias(f"s{j}")
             for j, name in enumerate(profiles) if j > 0])
-        state = names.select("id").join(seed_sums, "id", "left")
-        s_cols += [F.coalesce(F.col(f"s{j}"), F.lit(0.0)).alias(f"s{j}") for j in range(1, len(profiles))]
-    else:
-        state = names.select("id")
-    a, d = 1.0 - settings.damping, settings.damping
-    k = len(profiles)
+        state = state.join(seed_sums, "id", "left")
+        s_cols += [F.coalesce(F.col(f"s{j}"), F.lit(0.0)).alias(f"s{j}") for j in range(1, k)]
+    a = 1.0 - damping
     X = lineage.fix(state.select("id", *s_cols).select(
         "id", *[f"s{j}" for j in range(k)], *[(a * F.col(f"s{j}")).alias(f"x{j}") for j in range(k)])
         .repartition(parts, "id"))
-    n_nodes = names.count()
-    n_edges = P.count()
-    empty = {name: not any(inp.seeds[name][1]) for name in profiles[1:]}
-    state_of = [_Profile(name, j, None if j == 0 else settings.targets.certified_top, empty.get(name, False))
-                for j, name in enumerate(profiles)]
-    last = time.perf_counter()
+    return _Graph(edges, ids, P, X, seeded, profiles, names.count(), P.count())
+
+
+def _step(g: _Graph, X, damping: float):
+    """One iteration: ``(id, s, x, n, r)`` with ``n = a s + d P^T x`` and ``r = (n - x) / a``."""
+    from pyspark.sql import functions as F
+
+    a, d, k = 1.0 - damping, damping, len(g.profiles)
+    contrib = (g.P.join(X.select(F.col("id").alias("sid"), *[f"x{j}" for j in range(k)]), "sid")
+               .groupBy("did").agg(*[F.sum(F.col("p") * F.col(f"x{j}")).alias(f"c{j}") for j in range(k)]))
+    nxt = X.join(contrib, X.id == contrib.did, "left").select(
+        "id", *[f"s{j}" for j in range(k)], *[f"x{j}" for j in range(k)],
+        *[(a * F.col(f"s{j}") + d * F.coalesce(F.col(f"c{j}"), F.lit(0.0))).alias(f"n{j}") for j in range(k)])
+    return nxt.select("*", *[((F.col(f"n{j}") - F.col(f"x{j}")) / a).alias(f"r{j}") for j in range(k)])
+
+
+def recompute_spark(spark, inp: RecomputeInput, out: Path, settings: Settings, staging: str | None = None,
+                    progress: bool = True, max_iter: int = 10_000) -> Path:
+    """Recompute every profile on Spark and write the snapshot into ``out``; returns its folder."""
+    from pyspark.sql import functions as F
+
+    started = time.perf_counter()
+    lineage = Lineage(spark)
+    g = _load(spark, inp, lineage, settings.damping)
+    k = len(g.profiles)
+    state_of = [_Profile(name, j, None if j == 0 else settings.targets.certified_top,
+                         j > 0 and not any(inp.seeds[name][1])) for j, name in enumerate(g.profiles)]
+    X, last = g.X, time.perf_counter()
     for iteration in range(1, max_iter + 1):
-        contrib = (P.join(X.select(F.col("id").alias("sid"), *[f"x{j}" for j in range(k)]), "sid")
-                   .groupBy("did").agg(*[F.sum(F.col("p") * F.col(f"x{j}")).alias(f"c{j}") for j in range(k)]))
-        nxt = X.join(contrib, X.id == contrib.did, "left").select(
-            "id", *[f"s{j}" for j in range(k)], *[f"x{j}" for j in range(k)],
-            *[(a * F.col(f"s{j}") + d * F.coalesce(F.col(f"c{j}"), F.lit(0.0))).alias(f"n{j}") for j in range(k)])
-        nxt = lineage.cut(nxt.select("*", *[((F.col(f"n{j}") - F.col(f"x{j}")) / a).alias(f"r{j}")
-                                           for j in range(k)]))
+        nxt = lineage.cut(_step(g, X, settings.damping))
         figures = _certify(nxt, state_of, k, settings)  # its first aggregate materialises the cut
         lineage.release_older()
         if progress:
             now = time.perf_counter()
             print_progress(iteration, figures, now - last)
             last = now
-        if all(profile_met(settings.targets, p.rtol_reached, p.absolute_reached, p.terms.l1 if p.terms else 0.0)
-               for p in state_of):
+        if all(profile_met(settings.targets, p.rtol_reached, p.absolute_reached, p.terms.l1) for p in state_of):
             break
         X = nxt.select("id", *[f"s{j}" for j in range(k)], *[F.col(f"n{j}").alias(f"x{j}") for j in range(k)])
     else:
         raise RecomputeError(f"{inp.edges}: no certified result after {max_iter} iterations", code=1)
-    scores = _scores(nxt, ids, state_of)
-    seeds_out = seeded.groupBy("profile", "node").agg(F.sum("weight").alias("weight"))
-    tables = {"scores.parquet": (scores, ["profile", "node"]),
-              "edges.parquet": (edges, ["src", "dst"]),
+    seeds_out = g.seeded.groupBy("profile", "node").agg(F.sum("weight").alias("weight"))
+    tables = {"scores.parquet": (_scores(nxt, g.ids, state_of), ["profile", "node"]),
+              "edges.parquet": (g.edges, ["src", "dst"]),
               "seeds.parquet": (seeds_out.select("profile", "node", "weight"), ["profile", "node"])}
-    facts = {p.name: p.facts(n_nodes) for p in state_of}
-    master = spark.sparkContext.master
-    manifest = recompute_manifest(settings, "spark", iteration, n_nodes, n_edges, facts, inp,
-                                  time.perf_counter() - started, {"master": master})
+    manifest = recompute_manifest(settings, "spark", iteration, g.n_nodes, g.n_edges,
+                                  {p.name: p.facts(g.n_nodes) for p in state_of}, inp,
+                                  time.perf_counter() - started, {"master": spark.sparkContext.master})
 
     def fill(folder: Path) -> None:
         for fname, (df, order) in tables.items():
