@@ -85,7 +85,7 @@ def _write_lines(path: Path, records: list[tuple[bytes, bytes]]) -> int:
     return len(data)
 
 
-def test_bootstrap_from_an_edge_table_then_run_consumes_the_rest_once(tmp_path: Path) -> None:
+def test_bootstrap_from_an_edge_table_then_run_and_replay_consume_the_rest_once(tmp_path: Path) -> None:
     rng = np.random.default_rng(21)
     head = Stream()
     head.extend(rng, 2000, n_nodes=400)
@@ -107,6 +107,11 @@ def test_bootstrap_from_an_edge_table_then_run_consumes_the_rest_once(tmp_path: 
     full = Stream(records=list(head.records), edges=dict(head.edges), nodes=set(head.nodes), malformed=head.malformed)
     full.extend(rng, 1500, n_nodes=400)
     _write_lines(log, full.records[len(head.records):])
+    boot = newest_snapshot(root)
+    code, _, err = _run("replay", str(log), "--from", str(boot), "--out", str(tmp_path / "replayed"), "--quiet")
+    assert code == 0, err
+    manifest = check_snapshot_against(full, newest_snapshot(tmp_path / "replayed"))
+    assert manifest["events_applied"] + manifest["events_rejected"] == len(full.records) - len(head.records)
     code, _, err = _run("run", "--source", f"file:{log}", "--out", str(root), "--metrics", "", "--stop-at-end",
                         "--quiet")
     assert code == 0, err

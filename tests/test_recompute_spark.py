@@ -93,3 +93,16 @@ def test_audit_engine_spark_recomputes_a_snapshot_and_passes_it(spark, tmp_path:
     assert result["recompute_engine"] == "spark" and result["snapshot"] == live.name
     assert all(p["within_bounds"] for p in result["profiles"].values())
     assert newest_snapshot(tmp_path / "rec").is_dir()
+
+
+def test_spark_rejects_a_pair_listed_twice_and_leaves_no_snapshot(spark, tmp_path: Path) -> None:
+    import pyarrow as pa
+
+    from ranktide.replay.recompute import RecomputeError
+
+    table = tmp_path / "twice.parquet"
+    pq.write_table(pa.table({"src": ["a", "b", "a"], "dst": ["b", "c", "b"], "weight": [1.0, 1.0, 2.0]}), table)
+    with pytest.raises(RecomputeError, match=r"the pair a -> b is listed 2 times"):
+        recompute_spark(spark, RecomputeInput(edges=str(table)), tmp_path / "out", Settings(Targets()),
+                        progress=False)
+    assert not (tmp_path / "out").exists() or not any((tmp_path / "out").iterdir())
