@@ -195,3 +195,20 @@ def test_service_recomputes_periodically_and_exports_the_drift(tmp_path: Path) -
     _, err = proc.communicate(timeout=60)
     assert proc.returncode == 0, err.decode()[-2000:]
     assert "full recompute of snap-" in err.decode()
+
+
+def test_recompute_settings_come_from_file_environment_and_options(tmp_path: Path) -> None:
+    from ranktide.stream.config import ConfigError, load_config
+
+    conf = tmp_path / "ranktide.toml"
+    conf.write_text('source = "file:x.jsonl"\nrecompute_interval = 600\nrecompute_engine = "spark"\n')
+    cfg = load_config(conf, env={})
+    assert (cfg.recompute_interval, cfg.recompute_engine) == (600.0, "spark")
+    cfg = load_config(conf, env={"RANKTIDE_RECOMPUTE_INTERVAL": "30", "RANKTIDE_RECOMPUTE_ENGINE": "local"})
+    assert (cfg.recompute_interval, cfg.recompute_engine) == (30.0, "local")
+    cfg = load_config(conf, env={"RANKTIDE_RECOMPUTE_INTERVAL": "30"}, overrides={"recompute_interval": 0})
+    assert cfg.recompute_interval == 0.0
+    with pytest.raises(ConfigError, match="recompute_engine"):
+        load_config(conf, env={"RANKTIDE_RECOMPUTE_ENGINE": "dask"})
+    with pytest.raises(ConfigError, match="recompute_interval"):
+        load_config(conf, env={"RANKTIDE_RECOMPUTE_INTERVAL": "-1"})
