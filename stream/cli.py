@@ -70,7 +70,7 @@ def add_engine_options(p: argparse.ArgumentParser) -> None:
 
 
 def _cmd_replay(args: argparse.Namespace) -> int:
-    from ranktide.replay.logs import LogError
+    from ranktide.stream.logs import LogError
     from ranktide.replay.replay import ReplayOptions, replay_log
     from ranktide.stream.snapshots import SnapshotError
 
@@ -112,7 +112,7 @@ class _JsonFormatter(logging.Formatter):
 
 
 def _cmd_run(args: argparse.Namespace) -> int:
-    from ranktide.replay.logs import LogError
+    from ranktide.stream.logs import LogError
     from ranktide.stream.config import ConfigError, load_config
     from ranktide.stream.service import Service
     from ranktide.stream.snapshots import SnapshotError

@@ -34,6 +34,7 @@ import numpy as np
 from ranktide.solver import Ranker
 from ranktide.stream.config import ServiceConfig
 from ranktide.stream.events import Limits
+from ranktide.stream.logs import seed_personalizations
 from ranktide.stream.metrics import Metrics, start_metrics_server
 from ranktide.stream.snapshots import Counters, SnapshotError, load_latest, prune, write_snapshot
 from ranktide.stream.sources import Source, SourceChunk, open_source
@@ -180,8 +181,6 @@ class Service:
         snap = load_latest(self.out)
         if snap is None:
             self.ranker = Ranker(damping=self.cfg.damping, tolerance=self.cfg.tolerance)
-            from ranktide.replay.replay import seed_personalizations
-
             seed_personalizations(self.ranker, {k: Path(v) for k, v in self.cfg.personalizations.items()})
             self.counters = Counters()
             rejects.truncate(0)
