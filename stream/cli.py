@@ -125,6 +125,8 @@ def _cmd_run(args: argparse.Namespace) -> int:
         "score_topic": args.score_topic, "metrics": args.metrics,
         "log_format": "json" if args.log_json else None, "stop_at_end": True if args.stop_at_end else None,
         "max_id_length": args.max_id_length, "max_message_bytes": args.max_message_bytes,
+        "api_token": args.api_token, "api_allow_no_token": True if args.api_allow_no_token else None,
+        "ready_max_lag": args.ready_max_lag,
     }
     if args.personalization:
         overrides["personalizations"] = {k: str(v) for k, v in args.personalization}
@@ -263,7 +265,15 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--rejects", type=Path, help="rejects file (default ROOT/rejects.jsonl)")
     p.add_argument("--rejects-topic", help="send rejects to this Kafka topic instead of a file")
     p.add_argument("--score-topic", help="Kafka topic for the score-change feed (log-compacted, keyed profile/node)")
-    p.add_argument("--metrics", help="HOST:PORT of the Prometheus text endpoint (default 127.0.0.1:9464; '' disables)")
+    p.add_argument("--metrics", help="HOST:PORT of the Prometheus text endpoint and the read API "
+                                      "(default 127.0.0.1:9464; '' disables both)")
+    p.add_argument("--api-token", help="bearer token the read API's /v1/ paths require (prefer the "
+                                       "RANKTIDE_API_TOKEN variable: options show in process lists)")
+    p.add_argument("--api-allow-no-token", action="store_true",
+                   help="serve the read API on a non-loopback address without a token (refused otherwise)")
+    p.add_argument("--ready-max-lag", type=int, metavar="N",
+                   help="/readyz fails while the source lag is above N records (Kafka) or bytes (files) "
+                        "(default 10000)")
     p.add_argument("--max-id-length", type=int, help="longest node id accepted, in characters (default 1024)")
     p.add_argument("--max-message-bytes", type=int, help="largest record accepted, in bytes (default 1048576)")
     p.add_argument("--personalization", action="append", type=_personalization, metavar="NAME=SEEDS_FILE",

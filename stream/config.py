@@ -22,6 +22,7 @@ Command-line options override both.
 
 from __future__ import annotations
 
+import ipaddress
 import os
 import tomllib
 from dataclasses import dataclass, field, fields
@@ -80,7 +81,21 @@ class ServiceConfig:
     score_interval : float
         Seconds between two feed rounds.
     metrics : str
-        ``HOST:PORT`` for the Prometheus text endpoint; empty disables it.
+        ``HOST:PORT`` of the HTTP listener: the Prometheus text endpoint and
+        the read API; empty disables both.
+    api_token : str
+        Bearer token the read API's ``/v1/`` paths require; empty: none.
+    api_allow_no_token : bool
+        Allow a non-loopback ``metrics`` address without a token (refused
+        otherwise).
+    api_max_k, api_max_nodes, api_max_request_bytes : int
+        Largest ``k`` of ``/v1/top``, most nodes in one ``/v1/scores``, longest
+        request target (bytes).
+    ready_max_lag : int
+        ``/readyz`` fails while the source lag (records for Kafka, bytes for
+        files) is above this.
+    health_stall_seconds : float
+        ``/healthz`` fails when the service loop has not turned for this long.
     log_format : str
         ``text`` or ``json``.
     stop_at_end : bool
@@ -111,6 +126,13 @@ class ServiceConfig:
     score_threshold: float = 0.01
     score_interval: float = 5.0
     metrics: str = "127.0.0.1:9464"
+    api_token: str = ""
+    api_allow_no_token: bool = False
+    api_max_k: int = 1000
+    api_max_nodes: int = 1000
+    api_max_request_bytes: int = 8192
+    ready_max_lag: int = 10_000
+    health_stall_seconds: float = 300.0
     log_format: str = "text"
     stop_at_end: bool = False
     personalizations: dict[str, str] = field(default_factory=dict)
@@ -131,13 +153,47 @@ class ServiceConfig:
             raise ConfigError(f"keep_snapshots must be at least 1, got {self.keep_snapshots}")
         if self.log_format not in ("text", "json"):
             raise ConfigError(f"log_format must be text or json, got {self.log_format!r}")
+        self._validate_api()
         return self
+
+    def _validate_api(self) -> None:
+        for name in ("api_max_k", "api_max_nodes", "api_max_request_bytes"):
+            if getattr(self, name) < 1:
+                raise ConfigError(f"{name} must be at least 1, got {getattr(self, name)}")
+        if self.ready_max_lag < 0:
+            raise ConfigError(f"ready_max_lag must be >= 0, got {self.ready_max_lag}")
+        if not self.health_stall_seconds > 0:
+            raise ConfigError(f"health_stall_seconds must be > 0, got {self.health_stall_seconds}")
+        if not self.metrics:
+            return
+        host, sep, port = self.metrics.rpartition(":")
+        if not sep or not port.isdigit() or int(port) > 65535:
+            raise ConfigError(f"metrics {self.metrics!r}: expected HOST:PORT (or empty to disable)")
+        if not is_loopback(host) and not self.api_token and not self.api_allow_no_token:
+            raise ConfigError(f"metrics {self.metrics!r}: the read API would answer on a non-loopback address "
+                              f"without a token; set api_token (RANKTIDE_API_TOKEN) or api_allow_no_token = true")
 
     def redacted(self) -> dict:
         """The settings with secret values replaced, for logs."""
         out = {f.name: getattr(self, f.name) for f in fields(self)}
         out["kafka"] = redact(self.kafka)
+        if self.api_token:
+            out["api_token"] = "***"
         return out
+
+
+def is_loopback(host: str) -> bool:
+    """True for a loopback address (``127.0.0.0/8``, ``::1``, ``localhost``) or an empty host.
+
+    Other host names count as not loopback: they are not resolved here.
+    """
+    host = host.strip("[]")
+    if host in ("", "localhost"):
+        return True
+    try:
+        return ipaddress.ip_address(host).is_loopback
+    except ValueError:
+        return False
 
 
 def redact(props: dict[str, str]) -> dict[str, str]:

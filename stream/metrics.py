@@ -1,4 +1,4 @@
-"""Service metrics in the Prometheus text exposition format, served over HTTP."""
+"""Service metrics in the Prometheus text exposition format, served over HTTP with the read API."""
 
 from __future__ import annotations
 
@@ -7,6 +7,10 @@ import threading
 import time
 from dataclasses import dataclass, field
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    from ranktide.stream.api import ReadApi
 
 log = logging.getLogger("ranktide.metrics")
 
@@ -91,21 +95,56 @@ class Metrics:
         return "\n".join(lines) + "\n"
 
 
-def start_metrics_server(address: str, metrics: Metrics) -> ThreadingHTTPServer | None:
-    """Serve ``GET /metrics`` on ``HOST:PORT`` in a daemon thread (port 0 picks a free one)."""
+def start_metrics_server(address: str, metrics: Metrics, api: "ReadApi | None" = None) -> ThreadingHTTPServer | None:
+    """Serve ``GET /metrics`` (and the read API's paths) on ``HOST:PORT`` in a daemon thread.
+
+    Port 0 picks a free one. Other methods than GET and HEAD get 405, a
+    request with a body 413.
+    """
     host, _, port = address.rpartition(":")
 
     class Handler(BaseHTTPRequestHandler):
-        def do_GET(self) -> None:  # noqa: N802 - the http.server name
-            if self.path.split("?")[0] not in ("/metrics", "/"):
-                self.send_error(404, "only /metrics is served")
-                return
-            body = metrics.render().encode()
-            self.send_response(200)
-            self.send_header("Content-Type", "text/plain; version=0.0.4; charset=utf-8")
+        protocol_version = "HTTP/1.1"  # keep-alive: a poller reuses its connection
+        timeout = 10  # seconds an idle or slow connection may hold its thread
+
+        def _send(self, status: int, body: bytes, content_type: str, headers: dict, head: bool) -> None:
+            self.send_response(status)
+            self.send_header("Content-Type", content_type)
             self.send_header("Content-Length", str(len(body)))
+            self.send_header("Cache-Control", "no-store")
+            for key, value in headers.items():
+                self.send_header(key, value)
             self.end_headers()
-            self.wfile.write(body)
+            if not head:
+                self.wfile.write(body)
+
+        def _get(self, head: bool) -> None:
+            if self.headers.get("Content-Length", "0").strip() != "0" or self.headers.get("Transfer-Encoding"):
+                self.close_connection = True
+                self._send(413, b'{"error":"a GET takes no body","status":413}\n', "application/json", {}, head)
+                return
+            path = self.path.split("?")[0]
+            if path in ("/metrics", "/"):
+                body = metrics.render().encode()
+                self._send(200, body, "text/plain; version=0.0.4; charset=utf-8", {}, head)
+            elif api is not None:
+                r = api.handle(self.path, self.headers)
+                self._send(r.status, r.body, r.content_type, r.headers, head)
+            else:
+                self._send(404, b"only /metrics is served\n", "text/plain; charset=utf-8", {}, head)
+
+        def do_GET(self) -> None:  # noqa: N802 - the http.server name
+            self._get(head=False)
+
+        def do_HEAD(self) -> None:  # noqa: N802
+            self._get(head=True)
+
+        def _refuse(self) -> None:
+            self.close_connection = True
+            self._send(405, b'{"error":"only GET and HEAD are served","status":405}\n', "application/json",
+                       {"Allow": "GET, HEAD"}, False)
+
+        do_POST = do_PUT = do_DELETE = do_PATCH = do_OPTIONS = _refuse  # noqa: N815
 
         def log_message(self, fmt: str, *args) -> None:
             log.debug(fmt, *args)
@@ -115,6 +154,7 @@ def start_metrics_server(address: str, metrics: Metrics) -> ThreadingHTTPServer 
     except OSError as exc:
         log.warning("metrics endpoint %s not started: %s", address, exc)
         return None
+    server.daemon_threads = True
     threading.Thread(target=server.serve_forever, daemon=True, name="metrics").start()
-    log.info("metrics on http://%s:%d/metrics", *server.server_address[:2])
+    log.info("metrics%s on http://%s:%d/", " and read API" if api is not None else "", *server.server_address[:2])
     return server
