@@ -23,6 +23,7 @@ from __future__ import annotations
 import copy
 import hmac
 import json
+import logging
 import threading
 import time
 from dataclasses import dataclass, field
@@ -36,6 +37,7 @@ from ranktide.solver import GLOBAL, Engine, Ranker
 from ranktide.solver.ids import FrozenIds
 
 JSON = "application/json"
+log = logging.getLogger("ranktide.api")
 
 
 # ------------------------------------------------------------------ bounds and ranks
@@ -259,6 +261,9 @@ class ReadApi:
         except ApiError as exc:
             extra = {401: {"WWW-Authenticate": 'Bearer realm="ranktide"'}, 503: {"Retry-After": "1"}}.get(exc.status, {})
             return _json(exc.status, {"error": str(exc), "status": exc.status, **exc.extra}, extra)
+        except Exception as exc:  # noqa: BLE001 - a bug here must not take the listener down
+            log.error("read API: %s on %s: %s", type(exc).__name__, target[:200], exc)
+            return _json(500, {"error": "internal error", "status": 500})
         finally:
             self._slots.release()
 

@@ -28,6 +28,9 @@ class Metrics:
     last_snapshot: float = 0.0
     bounds: dict[str, float] = field(default_factory=dict)
     lag: dict[str, int] = field(default_factory=dict)
+    api_requests: int = 0
+    api_cpu_seconds: float = 0.0
+    _api_lock: threading.Lock = field(default_factory=threading.Lock)
     _rate_window: list[tuple[float, int, int]] = field(default_factory=list)
 
     def record_batch(self, applied: int, rejected: int) -> None:
@@ -41,6 +44,12 @@ class Metrics:
         self.snapshots += 1
         self.snapshot_seconds = seconds
         self.last_snapshot = time.time()
+
+    def record_request(self, cpu_seconds: float) -> None:
+        """One read API request answered, with the CPU time its thread spent on it."""
+        with self._api_lock:
+            self.api_requests += 1
+            self.api_cpu_seconds += cpu_seconds
 
     def rates(self) -> tuple[float, float]:
         """Events applied and rejected per second over the last minute."""
@@ -71,6 +80,12 @@ class Metrics:
             "# HELP ranktide_score_feed_messages_total Messages sent on the score-change feed.",
             "# TYPE ranktide_score_feed_messages_total counter",
             f"ranktide_score_feed_messages_total {self.feed_sent}",
+            "# HELP ranktide_api_requests_total Read API requests answered (any status).",
+            "# TYPE ranktide_api_requests_total counter",
+            f"ranktide_api_requests_total {self.api_requests}",
+            "# HELP ranktide_api_cpu_seconds_total CPU time the listener's threads spent answering the read API.",
+            "# TYPE ranktide_api_cpu_seconds_total counter",
+            f"ranktide_api_cpu_seconds_total {self.api_cpu_seconds:.6f}",
             "# HELP ranktide_certified_bound Certified bound on the normalised L1 error.",
             "# TYPE ranktide_certified_bound gauge",
         ]
@@ -106,6 +121,7 @@ def start_metrics_server(address: str, metrics: Metrics, api: "ReadApi | None" =
     class Handler(BaseHTTPRequestHandler):
         protocol_version = "HTTP/1.1"  # keep-alive: a poller reuses its connection
         timeout = 10  # seconds an idle or slow connection may hold its thread
+        disable_nagle_algorithm = True  # headers and body go out in two writes: no 40 ms delayed-ACK wait
 
         def _send(self, status: int, body: bytes, content_type: str, headers: dict, head: bool) -> None:
             self.send_response(status)
@@ -128,8 +144,10 @@ def start_metrics_server(address: str, metrics: Metrics, api: "ReadApi | None" =
                 body = metrics.render().encode()
                 self._send(200, body, "text/plain; version=0.0.4; charset=utf-8", {}, head)
             elif api is not None:
+                started = time.thread_time()
                 r = api.handle(self.path, self.headers)
                 self._send(r.status, r.body, r.content_type, r.headers, head)
+                metrics.record_request(time.thread_time() - started)
             else:
                 self._send(404, b"only /metrics is served\n", "text/plain; charset=utf-8", {}, head)
 
