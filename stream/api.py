@@ -37,6 +37,8 @@ from ranktide.solver import GLOBAL, Engine, Ranker
 from ranktide.solver.ids import FrozenIds
 
 JSON = "application/json"
+#: /v1/top answers kept per view and profile (distinct k values).
+TOP_ANSWERS_KEPT = 32
 log = logging.getLogger("ranktide.api")
 
 
@@ -88,6 +90,7 @@ class ProfileView:
         self.l1_bound = float(l1_bound)
         self._lock = threading.Lock()
         self._sorted: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray] | None = None
+        self.answers: dict[int, Response] = {}  # /v1/top answers by k: the same for the view's life
 
     def sorted_arrays(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
         """(lo sorted, hi sorted, hi order descending, score order descending), built once."""
@@ -377,12 +380,18 @@ class ReadApi:
             raise ApiError(400, f"k must lie between 1 and {self.settings.max_k}, got {k}")
         view = self._view()
         profile, prof = self._profile(view, query)
+        cached = prof.answers.get(k)
+        if cached is not None:
+            return cached
         best_ids, certified = prof.top(k)
         best, worst = prof.ranks(best_ids)
         rows = [{"node": view.ids.name(i), "score": float(prof.scores[i]), "bound": float(prof.bounds[i]),
                  "rank": {"best": int(b), "worst": int(w)}}
                 for i, b, w in zip(best_ids.tolist(), best.tolist(), worst.tolist())]
-        return _json(200, {**self._answer_head(view, profile), "k": k, "certified_set": certified, "top": rows})
+        answer = _json(200, {**self._answer_head(view, profile), "k": k, "certified_set": certified, "top": rows})
+        if len(prof.answers) < TOP_ANSWERS_KEPT:
+            prof.answers[k] = answer
+        return answer
 
     def _status(self, query: dict) -> Response:
         _only(query, set())
