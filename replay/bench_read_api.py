@@ -149,10 +149,10 @@ def timed_service(log: Path, snapshot: Path, out: Path, port: int):
                 ended = time.perf_counter()
                 self.chunks.append((ended, ended - started, len(chunk.parsed.batch)))
 
-        def _publish(self):
+        def _publish(self, certificates=None):
             started = time.perf_counter()
             try:
-                return super()._publish()
+                return super()._publish(certificates)
             finally:
                 self.publish_seconds += time.perf_counter() - started
                 self.views += 1
@@ -202,7 +202,13 @@ def measure(size: str, window: float, rate: float, seed: int, folder: Path) -> d
         raise RuntimeError("the reader process did not start")
     service = timed_service(log, snap, folder / "run", port)
     outcome: dict = {}
-    runner = threading.Thread(target=lambda: outcome.update(code=service.run()), name="service")
+    def run() -> None:
+        try:
+            outcome["code"] = service.run()
+        except Exception as exc:  # noqa: BLE001 - reported with the figures
+            outcome["error"] = f"{type(exc).__name__}: {exc}"
+
+    runner = threading.Thread(target=run, name="service")
     _say(f"read API cost: replaying, reader switched every {window:g} s")
     began = time.perf_counter()
     runner.start()
@@ -228,7 +234,7 @@ def measure(size: str, window: float, rate: float, seed: int, folder: Path) -> d
     seconds = time.perf_counter() - began
     return {
         "machine": machine_info(), "graph": info, "events": count, "reader_rate": rate, "window_seconds": window,
-        "exit_code": outcome.get("code"), "seconds": seconds, "windows": rows, "reader": summary,
+        "exit_code": outcome.get("code"), "error": outcome.get("error"), "seconds": seconds, "windows": rows, "reader": summary,
         "engine_events_per_second_without_reader": statistics.median(without) if without else None,
         "engine_events_per_second_with_reader": statistics.median(with_r) if with_r else None,
         "adjacent_ratio_median": statistics.median(ratios) if ratios else None,

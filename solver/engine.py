@@ -25,6 +25,7 @@ References
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -32,6 +33,8 @@ import numpy as np
 from . import kernels
 from .exact import solve
 from .graph import DynamicGraph
+from .bounds import CERTIFIED_TOP, Certificate, Weights, certify, global_upper, kth_largest, \
+    normalised_bounds, unnormalised_bounds
 from .metrics import certified_bound, top_k_indices
 
 GLOBAL = "global"
@@ -62,6 +65,30 @@ SEED_ROUNDING_SHARE = 1e-3
 #: Share of the residual budget that tiny residuals may hold while parked off the
 #: active lists (so that each settle scans only nodes that matter).
 PARK_SHARE = 0.25
+
+#: Default relative tolerance of the per-node contract: every published score within 0.1 %.
+RTOL = 1e-3
+
+#: Pushes of a per-node settle hand over to global sweeps once they have touched this
+#: share of the edges (a pushed edge costs about 30 times a swept one), and at least
+#: :data:`PUSH_EDGE_FLOOR` edges (on small graphs a sweep saves nothing).
+PUSH_EDGE_SHARE = 0.1
+PUSH_EDGE_FLOOR = 50_000
+
+#: Safety factor on the per-node thresholds: the running residual carries rounding
+#: (about 1e-12 relative), far below this margin.
+THRESHOLD_MARGIN = 0.99
+
+#: A personalization's error budget ``rtol / (1 + rtol)`` is split in four: the part
+#: relative to its own scores, the absolute part at hubs, the shift of its sum, slack.
+BUDGET_PARTS = 4.0
+
+#: Attempts to settle a personalization to its contract (each tightens the thresholds).
+CONTRACT_ATTEMPTS = 8
+
+#: A personalization's K-th best estimate is re-sorted only when fewer than K estimates
+#: reach this share of the value last sorted (a count certifies the lower bound).
+KTH_MARGIN = 0.8
 
 
 @dataclass
@@ -106,9 +133,18 @@ class Engine:
     damping : float
         Probability ``d`` of following an edge (default 0.85, common practice
         since the original PageRank report).
-    tolerance : float
-        Target of :meth:`settle`: the certified bound on the normalised L1
-        error of every profile's scores.
+    rtol : float or None
+        The per-node contract (default 1e-3): every published global score
+        within relative ``rtol`` of the exact PageRank; for a personalization,
+        every node scoring at least its ``certified_top``-th best score within
+        relative ``rtol`` and the others within ``rtol`` times that score.
+        ``None`` turns it off (then ``tolerance`` must be set).
+    tolerance : float or None
+        Optional second target (default off): the certified bound on the
+        normalised L1 error of every profile's scores. With both set,
+        :meth:`settle` meets both.
+    certified_top : int
+        ``K`` of the personalizations' contract (default 100).
     node_capacity, edge_capacity : int
         Initial array sizes; they grow as needed.
     """
@@ -116,17 +152,17 @@ class Engine:
     def __init__(
         self,
         damping: float = 0.85,
-        tolerance: float = 1e-6,
+        *,
+        rtol: float | None = RTOL,
+        tolerance: float | None = None,
+        certified_top: int = CERTIFIED_TOP,
         node_capacity: int = 1024,
         edge_capacity: int = 4096,
     ) -> None:
         if not 0.0 < damping < 1.0:
             raise ValueError(f"damping must lie strictly between 0 and 1, got {damping}")
-        if not tolerance > 0.0:
-            raise ValueError(f"tolerance must be > 0, got {tolerance}")
         self.damping = float(damping)
         self.teleport = 1.0 - self.damping
-        self.tolerance = float(tolerance)
         self.graph = DynamicGraph(node_capacity, edge_capacity)
         self.profiles: list[str] = [GLOBAL]
         cap = self.graph.node_capacity
@@ -137,11 +173,35 @@ class Engine:
         self._in_active = np.zeros((1, cap), dtype=np.bool_)
         self._n_active = np.zeros(1, dtype=np.int64)
         self._parked = np.zeros(1)  # residual mass of nodes parked off the active lists
+        self._parked_max = np.zeros(1)  # largest |r| parked since the last full listing
+        self._psum = np.zeros(1)  # sum of p per profile, kept by the kernels (re-summed on every full pass)
+        self._weights: list[Weights] = [Weights()]
+        self._kth: dict[int, float] = {}  # profile -> its K-th best estimate when last sorted
+        #: Certificates of the last :meth:`settle_certified` (what was last published).
+        self.last_certificates: dict[str, Certificate] = {}
+        self.set_targets(rtol, tolerance, certified_top)
         self._seed_error = np.zeros(1)  # rounding bound of seed updates to the residual, per profile
         self._queue = np.zeros(cap, dtype=np.int32)
         self._in_queue = np.zeros(cap, dtype=np.bool_)
         self._tmp = np.zeros(cap)
         self._spill = np.zeros((kernels.SWEEP_CHUNKS - 1, cap))  # partial sums of parallel sweeps
+
+    def set_targets(self, rtol: float | None = RTOL, tolerance: float | None = None,
+                    certified_top: int | None = None) -> None:
+        """Change the settle targets (the next :meth:`settle` meets them)."""
+        if rtol is None and tolerance is None:
+            raise ValueError("set rtol, tolerance or both: settle needs a target")
+        if rtol is not None and not 0.0 < rtol < 1.0:
+            raise ValueError(f"rtol must lie strictly between 0 and 1, got {rtol}")
+        if tolerance is not None and not tolerance > 0.0:
+            raise ValueError(f"tolerance must be > 0, got {tolerance}")
+        if certified_top is not None and int(certified_top) < 1:
+            raise ValueError(f"certified_top must be at least 1, got {certified_top}")
+        self.rtol = None if rtol is None else float(rtol)
+        self.tolerance = None if tolerance is None else float(tolerance)
+        if certified_top is not None:
+            self.certified_top = int(certified_top)
+        self._weights[0] = Weights(0.0, self._global_limit(0.0) if self.rtol is not None else 1.0)
 
     # ------------------------------------------------------------ structure
     @property
@@ -169,7 +229,10 @@ class Engine:
         self._in_active = np.vstack([self._in_active, np.zeros(cap, dtype=np.bool_)])
         self._n_active = np.append(self._n_active, 0)
         self._parked = np.append(self._parked, 0.0)
+        self._parked_max = np.append(self._parked_max, 0.0)
+        self._psum = np.append(self._psum, 0.0)
         self._seed_error = np.append(self._seed_error, 0.0)
+        self._weights.append(Weights())
         return len(self.profiles) - 1
 
     def ensure_nodes(self, n_nodes: int, n_new_edges: int = 0) -> None:
@@ -245,20 +308,27 @@ class Engine:
                 g.table, g.counters,
                 self.P, self.R, self.S, self.teleport, self.damping,
                 self._active, self._n_active, self._in_active, self._parked, self._seed_error,
-                kernels.LOCAL_REPAIR_MAX_DEGREE,
+                kernels.LOCAL_REPAIR_MAX_DEGREE, self._psum,
             )
         )
 
     def settle(self, tolerance: float | None = None) -> SettleStats:
-        """Push every profile until its certified bound is at most the tolerance."""
+        """Push every profile until it meets the contract: ``rtol`` and, if set, the L1 ``tolerance``.
+
+        ``tolerance`` given here replaces the L1 target of this call.
+        """
         tol = self.tolerance if tolerance is None else float(tolerance)
         total = SettleStats()
         n = self.n_nodes
         for k in range(len(self.profiles)):
-            if self._seed_error[k] > 0.0 and \
-                    self._seed_error[k] > SEED_ROUNDING_SHARE * tol * float(self.S[k, :n].sum()):
+            if self._seed_error[k] > 0.0 and self._seed_error[k] > SEED_ROUNDING_SHARE * self._smallest_budget(k, tol):
                 # seed updates may have rounded the residual beyond a sliver of the budget
                 self._recompute_profile_residual(k)
+            if self.rtol is not None:
+                total.add(self._settle_relative(k))
+            if tol is None:
+                self._compact(k, None, 0.0)
+                continue
             stats, s_p = self._settle_profile(k, tol)
             total.add(stats)
             # (the running sum s_p is exact enough to rule the case out when it is not small)
@@ -268,6 +338,218 @@ class Engine:
                 self._recompute_profile_residual(k)
                 total.add(self._settle_profile(k, tol)[0])
         return total
+
+    def _smallest_budget(self, k: int, tol: float | None) -> float:
+        """The smallest residual that matters to profile ``k``'s targets (for the rounding guard)."""
+        n = self.n_nodes
+        budgets = []
+        if tol is not None:
+            budgets.append(tol * float(self.S[k, :n].sum()))
+        if self.rtol is not None:
+            budgets.append(self._weights[k].beta)
+        return min(budgets)
+
+    # ------------------------------------------------------------ per-node contract
+    def _settle_relative(self, k: int) -> SettleStats:
+        """Settle profile ``k`` to the per-node contract."""
+        if k == 0:
+            return self._settle_global()
+        stats = SettleStats()
+        n = self.n_nodes
+        if not self.S[k, :n].any():
+            return stats
+        weights = None
+        for attempt in range(CONTRACT_ATTEMPTS):
+            weights = self._personal_weights(k, weights, fresh=attempt > 0)
+            self._weights[k] = weights
+            stats.add(self._push_and_sweep(k, weights))
+            if self._sum_shift(k) <= self._budget_part():
+                break
+        return stats
+
+    def _budget_part(self) -> float:
+        """A personalization's share of the error budget for each of its error terms."""
+        return self.rtol / (1.0 + self.rtol) / BUDGET_PARTS
+
+    def _sum_shift(self, k: int) -> float:
+        """``||r_k||_1 / sum p_k``: how far the normalisation may move (``inf`` before any estimate)."""
+        r1 = kernels.active_l1(k, self.R, self._active, self._n_active, self._parked)
+        s_p = self._psum[k]
+        return r1 / s_p if s_p > r1 else np.inf
+
+    def _settle_global(self) -> SettleStats:
+        """Push the global profile to the largest threshold that certifies ``rtol``.
+
+        The published score's certified relative error is
+        ``(rho / (1 - rho) + delta) / (1 - delta)`` with ``rho = max |r|`` and
+        ``delta = ||r||_1 / sum p`` (``solver.bounds``). Pushes never raise
+        ``||r||_1``, so a threshold chosen from ``delta`` after pushing stays
+        valid; thresholds come from a ladder of quarter octaves below the
+        largest one, so that small changes of ``delta`` do not unpark nodes.
+        """
+        stats = SettleStats()
+        weights = self._weights[0]
+        for _ in range(64):
+            stats.add(self._push_and_sweep(0, weights))
+            limit = self._global_limit(self._sum_shift(0))
+            if weights.beta <= limit:
+                break
+            weights = Weights(0.0, self._ladder(limit, weights.beta))
+            self._weights[0] = weights
+        return stats
+
+    def _global_limit(self, delta: float) -> float:
+        """Largest ``max |r_g|`` certifying ``rtol`` given the sum shift ``delta`` (0 if none does)."""
+        target = self.rtol / (1.0 + self.rtol)
+        q = target * (1.0 - delta) - delta
+        return THRESHOLD_MARGIN * q / (1.0 + q) if q > 0.0 else 0.0
+
+    def _ladder(self, limit: float, current: float) -> float:
+        """The largest rung ``top * 2**(-j/4)`` at most ``limit``, and below ``current``."""
+        top = self._global_limit(0.0)
+        if limit <= 0.0:
+            return current / 2.0
+        rungs = max(math.ceil(4.0 * math.log2(top / limit) - 1e-9), 0)
+        return min(top * 2.0 ** (-rungs / 4.0), current / 2.0 ** 0.25)
+
+    def _personal_weights(self, k: int, previous: Weights | None, fresh: bool) -> Weights:
+        """Thresholds ``alpha s + beta`` under which personalization ``k`` meets ``rtol``.
+
+        With ``c = max |r| / (alpha s + beta) <= 1`` the lemma bounds
+        ``|x_k(v) - p_k(v)|`` by ``alpha x_k(v) + beta x_g(v)``: ``alpha`` takes a
+        part of the relative budget; ``beta`` is sized so that even at the
+        largest global score the absolute part stays within that share of the
+        ``K``-th best score (a certified lower bound, :meth:`_kth_score`). A
+        retry (``previous``) halves ``beta``.
+        """
+        n = self.n_nodes
+        part = self._budget_part()
+        kth = self._kth_score(k, fresh)
+        theta_g = self._weights[0].beta
+        xg_max = float(self.P[0, :n].max(initial=0.0)) / (1.0 - min(theta_g, 0.5))
+        alpha = part * THRESHOLD_MARGIN
+        beta = alpha * (1.0 - part) * kth / xg_max if xg_max > 0.0 else alpha * kth
+        if previous is not None:
+            beta = min(beta, 0.5 * previous.beta)
+        return Weights(alpha, max(beta, 1e-300))
+
+    def _kth_score(self, k: int, fresh: bool) -> float:
+        """A certified lower bound on the ``certified_top``-th largest estimate of profile ``k``.
+
+        The partial sort is cached; in between, a cheap count checks that at
+        least ``K`` estimates still reach :data:`KTH_MARGIN` times the cached
+        value (then the K-th largest does too), else it is recomputed.
+        """
+        n = self.n_nodes
+        p = self.P[k, :n]
+        cached = self._kth.get(k, 0.0)
+        if not fresh and cached > 0.0 and \
+                np.count_nonzero(p >= KTH_MARGIN * cached) >= min(self.certified_top, np.count_nonzero(p > 0.0)):
+            return KTH_MARGIN * cached
+        positive = p[p > 0.0]
+        if positive.size:
+            cached = kth_largest(positive, self.certified_top)
+        else:  # nothing settled yet: x_k >= a s_k gives a lower bound
+            seeds = self.S[k, :n]
+            cached = self.teleport * kth_largest(seeds[seeds > 0.0], self.certified_top)
+        self._kth[k] = cached
+        return cached
+
+    def settle_certified(self) -> dict[str, Certificate]:
+        """Settle, then certify every profile; tighten and settle again where a certificate falls short.
+
+        What publishing calls (snapshots, the read API): the returned
+        certificates meet ``rtol`` unless rounding makes it impossible.
+        """
+        self.settle()
+        certificates = {}
+        for k, name in enumerate(self.profiles):
+            cert = self.certificate(name)
+            attempt = 0
+            while self.rtol is not None and not cert.meets(self.rtol) and attempt < CONTRACT_ATTEMPTS:
+                attempt += 1
+                if k == 0:
+                    weights = Weights(0.0, self._weights[0].beta / 2.0)
+                else:
+                    weights = self._personal_weights(k, self._weights[k], fresh=True)
+                self._weights[k] = weights
+                self._push_and_sweep(k, weights)
+                cert = self.certificate(name)
+            certificates[name] = cert
+        self.last_certificates = certificates
+        return certificates
+
+    def _push_and_sweep(self, k: int, weights: Weights) -> SettleStats:
+        """Forward push to the thresholds ``weights``; global sweeps where pushes would cost more."""
+        g = self.graph.arrays
+        n = self.n_nodes
+        stats = np.zeros(5, dtype=np.int64)
+        if self._parked_max[k] > weights.beta:
+            # thresholds fell below residuals parked earlier: list every node again
+            kernels.relist_active(k, self.R, n, self._active, self._n_active, self._in_active, self._parked)
+            self._parked_max[k] = 0.0
+        edge_limit = max(PUSH_EDGE_SHARE * self.n_edges, PUSH_EDGE_FLOOR)
+        for _ in range(1_000):
+            handover = kernels.push_to_thresholds(
+                k, n, self.n_edges, g.head, g.out_weight, g.out_degree, g.dst, g.weight, g.next,
+                self.P, self.R, self.S, weights.alpha, weights.beta, self.teleport, self.damping,
+                self._active, self._n_active, self._in_active, self._parked,
+                self._queue, self._in_queue, edge_limit, stats, self._psum,
+            )
+            if not handover or not self._sweep_to_thresholds(k, weights, edge_limit, stats):
+                break
+        return SettleStats(*(int(x) for x in stats))
+
+    def _sweep_to_thresholds(self, k: int, weights: Weights, edge_limit: float, stats: np.ndarray) -> bool:
+        """Global sweeps until pushes can finish; returns True when pushes should go on.
+
+        Sweeps shrink the residual everywhere but slowly at hubs, where it
+        keeps flowing in; so they stop once the nodes still above their
+        thresholds carry at most ``edge_limit`` out-edges, and pushes finish.
+        """
+        n = self.n_nodes
+        best = np.inf
+        stalled = 0
+        while True:
+            self._sweep(k)
+            stats[2] += 1
+            stats[3] += self.n_edges
+            worst, frontier = kernels.over_thresholds(k, n, self.R, self.S, weights.alpha, weights.beta,
+                                                      self.graph.arrays.out_degree)
+            if worst <= 1.0 or frontier <= edge_limit:
+                break
+            stalled = stalled + 1 if worst >= best else 0
+            best = min(best, worst)
+            if stalled >= 50:
+                break  # rounding floor: the certificate reports what was reached
+        kernels.relist_active(k, self.R, n, self._active, self._n_active, self._in_active, self._parked)
+        self._parked_max[k] = 0.0
+        return worst > 1.0 and stalled < 50
+
+    def certificate(self, profile: str = GLOBAL) -> Certificate:
+        """Certified per-node bounds of ``profile``'s published scores, and the contract they meet.
+
+        One pass over the nodes (``solver.bounds``): call it when publishing,
+        not per event.
+        """
+        k = self.profile_index(profile)
+        n = self.n_nodes
+        p, r, s = self.P[k, :n], self.R[k, :n], self.S[k, :n]
+        top = None if k == 0 else self.certified_top
+        if k > 0 and not s.any():
+            zeros = np.zeros(n)
+            return certify(zeros, zeros, 0.0, top)
+        l1 = certified_bound(p, r)
+        xbar_g = global_upper(self.P[0, :n], self.R[0, :n])
+        err = unnormalised_bounds(p, r, s, xbar_g, None if k == 0 else self._weights[k])
+        bounds = normalised_bounds(p, r, err, l1)
+        total = float(p.sum())
+        scores = p / total if total > 0.0 else np.zeros(n)
+        return certify(scores, bounds, l1, top)
+
+    def error_bounds(self, profile: str = GLOBAL) -> np.ndarray:
+        """Certified bound on ``|published - exact|`` for every node of ``profile``."""
+        return self.certificate(profile).bounds
 
     def _settle_profile(self, k: int, tol: float) -> tuple[SettleStats, float]:
         """Settle profile ``k``; return the work done and the sum of its estimate."""
@@ -282,6 +564,7 @@ class Engine:
         )
         if sweep:
             s_p = self._sweep_until_done(k, tol, rho, s_p, abs_p, stats)
+        self._psum[k] = s_p
         self._compact(k, tol, float(s_p))
         return SettleStats(*(int(x) for x in stats)), float(s_p)
 
@@ -304,6 +587,7 @@ class Engine:
             if stalled >= 50:
                 break  # rounding floor reached: the bound reported is what it is
         kernels.relist_active(k, self.R, n, self._active, self._n_active, self._in_active, self._parked)
+        self._parked_max[k] = 0.0
         return s_p
 
     def _sweep(self, k: int) -> tuple[float, float, float]:
@@ -313,14 +597,25 @@ class Engine:
         kernels.sweep_begin(k, self.P, self.R, self._tmp, n, g.out_weight, self.teleport, self.damping)
         kernels.scatter_slots(self.R[k], self._spill, self._tmp, n, g.src, g.dst, g.weight,
                               int(g.counters[0]), self.graph.unit_weights)
-        return kernels.profile_sums(k, self.P, self.R, n)
+        sums = kernels.profile_sums(k, self.P, self.R, n)
+        self._psum[k] = sums[1]
+        return sums
 
-    def _compact(self, k: int, tol: float, s_p: float) -> None:
-        """Shorten the active list; park tiny residuals within a share of the error budget."""
-        budget = PARK_SHARE * tol * max(s_p, 0.0) / (2.0 + tol)
-        each = kernels.park_threshold(k, self.R, self._active, self._n_active, budget - self._parked[k])
-        kernels.compact_active(k, self.R, self._active, self._n_active, self._in_active, self._parked,
-                               budget, each)
+    def _compact(self, k: int, tol: float | None, s_p: float) -> None:
+        """Shorten the active list: park residuals that no target needs pushed.
+
+        Under the per-node contract every residual within its threshold may be
+        parked; under an L1 target, tiny ones within a share of the error budget.
+        """
+        each, budget = np.inf, np.inf
+        if tol is not None:
+            budget = PARK_SHARE * tol * max(s_p, 0.0) / (2.0 + tol)
+            each = kernels.park_threshold(k, self.R, self._active, self._n_active, budget - self._parked[k])
+        if self.rtol is not None:
+            each = min(each, self._weights[k].beta)
+        largest = kernels.compact_active(k, self.R, self._active, self._n_active, self._in_active, self._parked,
+                                         budget, each)
+        self._parked_max[k] = max(self._parked_max[k], largest)
 
     # ------------------------------------------------------------ exactness
     def recompute_residual(self) -> float:
@@ -345,6 +640,7 @@ class Engine:
         scale = max(float(np.abs(self.S[k, :n]).sum()), 1.0)
         drift = float(np.abs(fresh - self.R[k, :n]).max(initial=0.0)) / scale
         self.R[k, :n] = fresh
+        self._psum[k] = float(self.P[k, :n].sum())
         self._seed_error[k] = 0.0
         self._reset_active(k)
         return drift
@@ -405,6 +701,7 @@ class Engine:
     def _reset_active(self, k: int) -> None:
         n = self.n_nodes
         self._parked[k] = 0.0
+        self._parked_max[k] = 0.0
         self._in_active[k, :] = False
         nz = np.flatnonzero(self.R[k, :n]).astype(np.int32)
         self._active[k, : nz.size] = nz

@@ -6,13 +6,14 @@ may ask about, published by the service's own thread right after a settle
 that ends a fully applied chunk of events (:meth:`stream.service.Service._publish`).
 The HTTP threads never read the engine's arrays, so an answer never reflects
 a half-applied batch, and a request never waits for the engine nor makes it
-wait. Publishing costs one copy of each profile's scores; the sorted arrays
-behind rank ranges and top lists are built by the HTTP threads, once per view
-and profile, on first use.
+wait. A view holds the certificates of :meth:`solver.engine.Engine.settle_certified`
+(published scores and a certified bound per node); the sorted arrays behind
+rank ranges and top lists are built by the HTTP threads, once per view and
+profile, on first use.
 
 Bounds and ranks. Each node's score comes with a certified absolute bound
-(:func:`node_bounds`); with the intervals ``[lo, hi] = [score - bound, score +
-bound]`` a node's possible ranks run from ``1 + #{w : lo(w) > hi(v)}`` to
+(the per-node contract, :mod:`solver.bounds`); with the intervals ``[lo, hi] =
+[score - bound, score + bound]`` a node's possible ranks run from ``1 + #{w : lo(w) > hi(v)}`` to
 ``1 + #{w != v : hi(w) >= lo(v)}`` (Wills & Ipsen, "Ordinal ranking for
 Google's PageRank", SIAM J. Matrix Anal. Appl. 30(4), 2009; design notes,
 section 4b), counted with binary searches in the sorted ``lo`` and ``hi``.
@@ -33,8 +34,10 @@ from urllib.parse import parse_qs, urlsplit
 
 import numpy as np
 
-from ranktide.solver import GLOBAL, Engine, Ranker
+from ranktide.solver import GLOBAL, Ranker
+from ranktide.solver.bounds import Certificate
 from ranktide.solver.ids import FrozenIds
+from ranktide.stream.snapshots import _contract_facts
 
 JSON = "application/json"
 #: /v1/top answers kept per view and profile (distinct k values).
@@ -43,18 +46,6 @@ log = logging.getLogger("ranktide.api")
 
 
 # ------------------------------------------------------------------ bounds and ranks
-
-
-def node_bounds(engine: Engine, profile: str) -> np.ndarray:
-    """Certified bound on the absolute error of each node's published score in ``profile``.
-
-    The one place that says how sure a single score is. Until the engine
-    certifies each node on its own (per-node contract, design notes section
-    4b), every node gets the profile's normalised L1 bound: a node's error is
-    at most the sum of all nodes' errors. Returned read-only, length
-    ``engine.n_nodes``; called by the service's thread at a settle point.
-    """
-    return np.broadcast_to(np.float64(engine.certified_bound(profile)), (engine.n_nodes,))
 
 
 def rank_ranges(lo_sorted: np.ndarray, hi_sorted: np.ndarray, lo: np.ndarray,
@@ -81,13 +72,17 @@ def rank_ranges(lo_sorted: np.ndarray, hi_sorted: np.ndarray, lo: np.ndarray,
 
 
 class ProfileView:
-    """One profile's published scores and bounds, with lazily built sorted arrays."""
+    """One profile's published scores and per-node bounds (a certificate), with lazily built sorted arrays.
 
-    def __init__(self, scores: np.ndarray, bounds: np.ndarray, l1_bound: float) -> None:
-        scores.setflags(write=False)
-        self.scores = scores
-        self.bounds = bounds
-        self.l1_bound = float(l1_bound)
+    The arrays are the certificate's own, which nothing writes after it is made.
+    """
+
+    def __init__(self, cert: Certificate, is_global: bool) -> None:
+        self.cert = cert
+        self.is_global = is_global
+        self.scores = cert.scores
+        self.bounds = cert.bounds
+        self.l1_bound = float(cert.l1_bound)
         self._lock = threading.Lock()
         self._sorted: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray] | None = None
         self.answers: dict[int, Response] = {}  # /v1/top answers by k: the same for the view's life
@@ -138,19 +133,20 @@ class ReadView:
     tolerance: float
     profiles: dict[str, ProfileView]
     ids: FrozenIds
+    rtol: float | None
+    certified_top: int
+    within_contract: bool
 
-    @property
-    def within_contract(self) -> bool:
-        return all(p.l1_bound <= self.tolerance for p in self.profiles.values())
 
-
-def build_view(seq: int, ranker: Ranker, counters: dict, positions: dict) -> ReadView:
-    """Copy what the API needs out of a settled ranker (service thread, between batches)."""
+def build_view(seq: int, ranker: Ranker, counters: dict, positions: dict,
+               certificates: dict[str, Certificate]) -> ReadView:
+    """What the API needs of a settled ranker and its certificates (service thread, between batches)."""
     eng = ranker.engine
-    profiles = {name: ProfileView(eng.scores(name), node_bounds(eng, name), eng.certified_bound(name))
-                for name in eng.profiles}
+    profiles = {name: ProfileView(certificates[name], k == 0) for k, name in enumerate(eng.profiles)}
+    met = all((eng.rtol is None or c.meets(eng.rtol)) and (eng.tolerance is None or c.l1_bound <= eng.tolerance)
+              for c in certificates.values())
     return ReadView(seq, _now(), copy.deepcopy(positions), dict(counters), eng.n_nodes, eng.n_edges,
-                    eng.damping, eng.tolerance, profiles, ranker.ids.frozen())
+                    eng.damping, eng.tolerance, profiles, ranker.ids.frozen(), eng.rtol, eng.certified_top, met)
 
 
 def _now() -> str:
@@ -317,7 +313,7 @@ class ReadApi:
         elif total > self.settings.ready_max_lag:
             reasons.append(f"lag {total} above {self.settings.ready_max_lag}")
         if view is not None and not view.within_contract:
-            reasons.append("last settle above the tolerance")
+            reasons.append("last published state outside the contract (rtol, tolerance)")
         facts = {"phase": st.phase, "lag": total, "max_lag": self.settings.ready_max_lag,
                  "settled_at": view.settled_at if view else None,
                  "within_tolerance": view.within_contract if view else None}
@@ -345,7 +341,7 @@ class ReadApi:
     def _answer_head(self, view: ReadView, profile: str) -> dict:
         return {"profile": profile, "positions": view.positions, "settled_at": view.settled_at,
                 "events_applied": view.counters.get("events_applied"), "nodes": view.nodes,
-                "certified_l1_bound": view.profiles[profile].l1_bound}
+                "certified_l1_bound": _finite(view.profiles[profile].l1_bound)}
 
     def _scores(self, query: dict) -> Response:
         _only(query, {"node", "profile"})
@@ -364,7 +360,7 @@ class ReadApi:
             raise ApiError(404, f"unknown node{'s' if len(unknown) > 1 else ''}", unknown=unknown[:100])
         idx = np.asarray(ids, dtype=np.int64)
         best, worst = prof.ranks(idx)
-        rows = [{"node": n, "score": float(prof.scores[i]), "bound": float(prof.bounds[i]),
+        rows = [{"node": n, "score": float(prof.scores[i]), "bound": _finite(prof.bounds[i]),
                  "rank": {"best": int(b), "worst": int(w)}}
                 for n, i, b, w in zip(names, idx.tolist(), best.tolist(), worst.tolist())]
         return _json(200, {**self._answer_head(view, profile), "scores": rows})
@@ -385,7 +381,7 @@ class ReadApi:
             return cached
         best_ids, certified = prof.top(k)
         best, worst = prof.ranks(best_ids)
-        rows = [{"node": view.ids.name(i), "score": float(prof.scores[i]), "bound": float(prof.bounds[i]),
+        rows = [{"node": view.ids.name(i), "score": float(prof.scores[i]), "bound": _finite(prof.bounds[i]),
                  "rank": {"best": int(b), "worst": int(w)}}
                 for i, b, w in zip(best_ids.tolist(), best.tolist(), worst.tolist())]
         answer = _json(200, {**self._answer_head(view, profile), "k": k, "certified_set": certified, "top": rows})
@@ -398,13 +394,20 @@ class ReadApi:
         view = self._view()
         ready, reasons, facts = self.readiness()
         body = {"settled_at": view.settled_at, "nodes": view.nodes, "edges": view.edges,
-                "damping": view.damping, "tolerance": view.tolerance, **view.counters,
-                "certified_bound": {name: p.l1_bound for name, p in view.profiles.items()},
+                "damping": view.damping, "rtol": view.rtol, "tolerance": view.tolerance,
+                "certified_top": view.certified_top, **view.counters,
+                "certified_bound": {name: _finite(p.l1_bound) for name, p in view.profiles.items()},
+                "profiles": {name: _contract_facts(p.cert, p.is_global) for name, p in view.profiles.items()},
                 "positions": view.positions, "lag": self.state.lag, "ready": ready,
                 "last_snapshot": self.state.last_snapshot, "loop_turns": self.state.loop_turns}
         if reasons:
             body["not_ready"] = reasons
         return _json(200, body)
+
+
+def _finite(x: float) -> float | None:
+    """JSON has no infinity: an uncertified figure is null."""
+    return float(x) if np.isfinite(x) else None
 
 
 def _only(query: dict, allowed: set[str]) -> None:

@@ -5,7 +5,7 @@ A configuration file looks like::
     source = "kafka://broker1:9092,broker2:9092/edges"
     out = "/var/lib/ranktide"
     group = "ranktide"
-    tolerance = 1e-6
+    rtol = 1e-3
     snapshot_interval = 60
 
     [kafka]                      # any librdkafka property, passed through
@@ -14,7 +14,7 @@ A configuration file looks like::
     "sasl.username" = "ranker"
     "sasl.password" = "..."      # never logged nor written to snapshots
 
-Environment variables override the file: ``RANKTIDE_TOLERANCE=1e-7``,
+Environment variables override the file: ``RANKTIDE_RTOL=1e-4``,
 ``RANKTIDE_SNAPSHOT_INTERVAL=30``; ``RANKTIDE_KAFKA_SASL_PASSWORD=...`` sets
 the librdkafka property ``sasl.password`` (underscores become dots).
 Command-line options override both.
@@ -51,8 +51,17 @@ class ServiceConfig:
     owner_topic : str
         One-partition topic whose holder owns the graph among the group's
         processes (default ``GROUP.owner``, created when missing).
-    tolerance, damping : float
-        Engine parameters.
+    rtol : float
+        The per-node contract: every published score within relative ``rtol``
+        of the exact one (default 1e-3; 0 turns it off, then ``tolerance`` must be set).
+    tolerance : float
+        Optional second target: the certified normalised L1 error of every
+        profile (default 0: off).
+    certified_top : int
+        ``K``: a personalization certifies its K best nodes to ``rtol`` relative,
+        the rest to ``rtol`` times the K-th score (default 100).
+    damping : float
+        Probability of following an edge (default 0.85).
     snapshot_interval : float
         Seconds between snapshots (offsets are committed with each one).
     snapshot_events : int
@@ -91,6 +100,9 @@ class ServiceConfig:
     api_max_k, api_max_nodes, api_max_request_bytes : int
         Largest ``k`` of ``/v1/top``, most nodes in one ``/v1/scores``, longest
         request target (bytes).
+    api_view_interval : float
+        Least seconds between two states published to the read API (each
+        costs a certificate: a pass over the nodes of every profile).
     ready_max_lag : int
         ``/readyz`` fails while the source lag (records for Kafka, bytes for
         files) is above this.
@@ -110,7 +122,9 @@ class ServiceConfig:
     out: str = "ranktide-out"
     group: str = "ranktide"
     owner_topic: str = ""
-    tolerance: float = 1e-6
+    rtol: float = 1e-3
+    tolerance: float = 0.0
+    certified_top: int = 100
     damping: float = 0.85
     snapshot_interval: float = 60.0
     snapshot_events: int = 0
@@ -131,6 +145,7 @@ class ServiceConfig:
     api_max_k: int = 1000
     api_max_nodes: int = 1000
     api_max_request_bytes: int = 8192
+    api_view_interval: float = 0.5
     ready_max_lag: int = 10_000
     health_stall_seconds: float = 300.0
     log_format: str = "text"
@@ -145,8 +160,14 @@ class ServiceConfig:
             raise ConfigError(f"source {self.source!r}: expected kafka://HOST:PORT/TOPIC or file:PATH")
         if not 0 < self.damping < 1:
             raise ConfigError(f"damping must lie strictly between 0 and 1, got {self.damping}")
-        if not self.tolerance > 0:
-            raise ConfigError(f"tolerance must be > 0, got {self.tolerance}")
+        if not 0 <= self.rtol < 1:
+            raise ConfigError(f"rtol must lie in [0, 1) (0: off), got {self.rtol}")
+        if not self.tolerance >= 0:
+            raise ConfigError(f"tolerance must be >= 0 (0: off), got {self.tolerance}")
+        if self.rtol == 0 and self.tolerance == 0:
+            raise ConfigError("rtol and tolerance are both off: set at least one")
+        if self.certified_top < 1:
+            raise ConfigError(f"certified_top must be at least 1, got {self.certified_top}")
         if not self.snapshot_interval > 0:
             raise ConfigError(f"snapshot_interval must be > 0 seconds, got {self.snapshot_interval}")
         if self.keep_snapshots < 1:
@@ -160,6 +181,8 @@ class ServiceConfig:
         for name in ("api_max_k", "api_max_nodes", "api_max_request_bytes"):
             if getattr(self, name) < 1:
                 raise ConfigError(f"{name} must be at least 1, got {getattr(self, name)}")
+        if not self.api_view_interval >= 0:
+            raise ConfigError(f"api_view_interval must be >= 0 seconds, got {self.api_view_interval}")
         if self.ready_max_lag < 0:
             raise ConfigError(f"ready_max_lag must be >= 0, got {self.ready_max_lag}")
         if not self.health_stall_seconds > 0:
@@ -172,6 +195,11 @@ class ServiceConfig:
         if not is_loopback(host) and not self.api_token and not self.api_allow_no_token:
             raise ConfigError(f"metrics {self.metrics!r}: the read API would answer on a non-loopback address "
                               f"without a token; set api_token (RANKTIDE_API_TOKEN) or api_allow_no_token = true")
+
+    def targets(self) -> dict:
+        """The engine's settle targets (``None`` where a setting is 0: off)."""
+        return {"rtol": self.rtol or None, "tolerance": self.tolerance or None,
+                "certified_top": self.certified_top}
 
     def redacted(self) -> dict:
         """The settings with secret values replaced, for logs."""

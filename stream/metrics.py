@@ -27,6 +27,7 @@ class Metrics:
     snapshot_seconds: float = 0.0
     last_snapshot: float = 0.0
     bounds: dict[str, float] = field(default_factory=dict)
+    rtol_reached: dict[str, float] = field(default_factory=dict)
     lag: dict[str, int] = field(default_factory=dict)
     api_requests: int = 0
     api_cpu_seconds: float = 0.0
@@ -90,6 +91,12 @@ class Metrics:
             "# TYPE ranktide_certified_bound gauge",
         ]
         lines += [f'ranktide_certified_bound{{profile="{p}"}} {b:.6g}' for p, b in sorted(self.bounds.items())]
+        lines += [
+            "# HELP ranktide_rtol_reached Largest certified relative error of the last snapshot's scores "
+            "(per-node contract; the K best nodes of a personalization).",
+            "# TYPE ranktide_rtol_reached gauge",
+        ]
+        lines += [f'ranktide_rtol_reached{{profile="{p}"}} {b:.6g}' for p, b in sorted(self.rtol_reached.items())]
         lines += [
             "# HELP ranktide_consumer_lag Records not yet read, per partition (or bytes, per file).",
             "# TYPE ranktide_consumer_lag gauge",

@@ -43,6 +43,9 @@ from ranktide.stream.sources import Source, SourceChunk, open_source
 
 log = logging.getLogger("ranktide.service")
 
+#: A view is published at most once per this many times the cost of the last one.
+VIEW_COST_FACTOR = 50
+
 #: Allocations between young-generation collections while the service runs
 #: (Python's default is 700).
 GC_YOUNG_THRESHOLD = 100_000
@@ -127,18 +130,20 @@ class ScoreFeed:
         self._last = time.monotonic()
         names = ranker.node_names().to_pylist() if ranker.engine.n_nodes else []
         sent = 0
+        certificates = ranker.engine.settle_certified()
         for profile in ranker.profiles:
-            scores = ranker.scores(profile)
+            cert = certificates[profile]
+            scores = cert.scores
             old = self._sent.get(profile, np.zeros(0))
             prev = np.zeros_like(scores)
             prev[: old.size] = old[: scores.size]
             with np.errstate(divide="ignore", invalid="ignore"):
                 moved = np.abs(scores - prev) > self.threshold * np.abs(prev)
             moved &= (scores != prev)
-            bound = ranker.certified_bound(profile)
             for i in np.flatnonzero(moved):
                 value = {"node": names[i], "profile": profile, "score": float(scores[i]),
-                         "certified_bound": bound, "positions": positions}
+                         "error_bound": float(cert.bounds[i]), "certified_bound": cert.l1_bound,
+                         "positions": positions}
                 self._producer.produce(self.topic, key=f"{profile}/{names[i]}".encode(), value=json.dumps(value).encode())
                 if sent % 10_000 == 0:
                     self._producer.poll(0)
@@ -171,6 +176,7 @@ class Service:
         self.live = LiveState()  # what the read API answers from (see stream/api.py)
         self._view_due = False   # state or positions moved since the last published view
         self._views = 0
+        self._next_view = 0.0    # monotonic time before which no view is published (their cost)
 
     # -------------------------------------------------------------- lifecycle
     def request_stop(self, *_args) -> None:
@@ -185,7 +191,7 @@ class Service:
         """Load the newest good snapshot (or start empty); return its source positions."""
         snap = load_latest(self.out)
         if snap is None:
-            self.ranker = Ranker(damping=self.cfg.damping, tolerance=self.cfg.tolerance)
+            self.ranker = Ranker(damping=self.cfg.damping, **self.cfg.targets())
             seed_personalizations(self.ranker, {k: Path(v) for k, v in self.cfg.personalizations.items()})
             self.counters = Counters()
             rejects.truncate(0)
@@ -336,8 +342,8 @@ class Service:
         self.counters.events_rejected += len(chunk.parsed.reasons)
         self.metrics.record_batch(len(batch), len(chunk.parsed.reasons))
         self._view_due = True
-        if not self._unsettled:  # the chunk ended with a settle: a consistent state to show
-            self._publish()
+        if not self._unsettled and time.monotonic() >= self._next_view:
+            self._publish()  # the chunk ended with a settle: a consistent state to show
 
     def _settle(self, publish: bool = True) -> None:
         """Bring every profile within the tolerance (scores are fresh again).
@@ -346,11 +352,12 @@ class Service:
         settled state and the source positions agree: the read API gets it.
         """
         if self._unsettled:
+            # the certified figures are exported at publish points (snapshots): a certificate is
+            # one pass over the nodes, too much for every settle of a small batch
             self.metrics.push_edges += self.ranker.settle().edge_touches
-            self.metrics.bounds = {p: self.ranker.certified_bound(p) for p in self.ranker.profiles}
             self._unsettled = False
         self._settled_at = time.monotonic()
-        if publish and self._view_due:
+        if publish and self._view_due and time.monotonic() >= self._next_view:
             self._publish()
 
     def _behind(self) -> int:
@@ -360,11 +367,25 @@ class Service:
             return 0
         return positions_distance(self.source.positions(), view.positions)
 
-    def _publish(self) -> None:
-        """Hand the read API an immutable copy of the settled state (this thread, between batches)."""
+    def _publish(self, certificates: dict | None = None) -> None:
+        """Hand the read API the settled state with its certificates (this thread, between batches).
+
+        A certificate is a pass over the nodes of every profile: views are
+        published at most every ``api_view_interval`` seconds, and at most
+        once per ``VIEW_COST_FACTOR`` times what the last one cost.
+        """
+        started = time.monotonic()
+        if certificates is None:
+            certificates = self.ranker.engine.settle_certified()
+            self._unsettled = False
+            self.metrics.bounds = {p: c.l1_bound for p, c in certificates.items()}
+            self.metrics.rtol_reached = {p: max(c.rtol_reached, c.absolute_reached) for p, c in certificates.items()}
         self._views += 1
-        self.live.view = build_view(self._views, self.ranker, self.counters.as_dict(), self.source.positions())
+        self.live.view = build_view(self._views, self.ranker, self.counters.as_dict(), self.source.positions(),
+                                    certificates)
         self._view_due = False
+        now = time.monotonic()
+        self._next_view = now + max(self.cfg.api_view_interval, VIEW_COST_FACTOR * (now - started))
 
     def _snapshot(self, rejects: RejectsSink, reason: str = "interval") -> Path:
         started = time.perf_counter()
@@ -373,10 +394,12 @@ class Service:
         path = write_snapshot(self.out, self.ranker, self.counters, positions)  # settles first
         self._unsettled = False
         self._settled_at = time.monotonic()
-        self.metrics.bounds = {p: self.ranker.certified_bound(p) for p in self.ranker.profiles}
+        certificates = self.ranker.engine.last_certificates
+        self.metrics.bounds = {p: c.l1_bound for p, c in certificates.items()}
+        self.metrics.rtol_reached = {p: max(c.rtol_reached, c.absolute_reached) for p, c in certificates.items()}
         self.live.last_snapshot = {"name": path.name, "written_at": datetime.now(timezone.utc).isoformat(
             timespec="milliseconds")}
-        self._publish()
+        self._publish(certificates)  # those of the snapshot's own settle
         self.source.commit(positions)
         removed = prune(self.out, self.cfg.keep_snapshots)
         self._dirty = False

@@ -75,10 +75,11 @@ def wait_for(fn, timeout: float = 90.0, what: str = "condition"):
 
 
 def start(log: Path, root: Path, port: int, *extra: str, env: dict | None = None) -> subprocess.Popen:
-    """``ranktide run`` on ``log``, small polls and frequent settles, API on ``port``."""
+    """``ranktide run`` on ``log``, small polls, frequent settles and views, API on ``port``."""
     proc = ranktide("run", "--source", f"file:{log}", "--out", str(root), "--metrics", f"127.0.0.1:{port}",
                     "--snapshot-interval", "0.3", "--tolerance", str(TOLERANCE), *extra,
-                    env={"RANKTIDE_FILE_CHUNK_BYTES": "4096", "RANKTIDE_SETTLE_INTERVAL": "0.02", **(env or {})})
+                    env={"RANKTIDE_FILE_CHUNK_BYTES": "4096", "RANKTIDE_SETTLE_INTERVAL": "0.02",
+                         "RANKTIDE_API_VIEW_INTERVAL": "0", **(env or {})})
     return proc
 
 
