@@ -211,7 +211,9 @@ class Service:
         self._owner = True
         self._events_at_snapshot = self.counters.events_applied + self.counters.events_rejected
         self._last_snapshot = time.monotonic()
-        self._unsettled = self._view_due = True
+        # (an empty engine is not settled: that collapses its thresholds, see test_known_engine_bugs)
+        self._unsettled = self.ranker.engine.n_nodes > 0
+        self._view_due = True
         self._settle()  # publishes the restored state
         self.metrics.lag = self.source.lag()
         self.live.lag = self.metrics.lag
@@ -375,8 +377,11 @@ class Service:
         once per ``VIEW_COST_FACTOR`` times what the last one cost.
         """
         started = time.monotonic()
-        if certificates is None:
-            certificates = self.ranker.engine.settle_certified()
+        eng = self.ranker.engine
+        if certificates is None and eng.n_nodes == 0:  # nothing to settle (and settling it would harm)
+            certificates = {name: eng.certificate(name) for name in eng.profiles}
+        elif certificates is None:
+            certificates = eng.settle_certified()
             self._unsettled = False
             self.metrics.bounds = {p: c.l1_bound for p, c in certificates.items()}
             self.metrics.rtol_reached = {p: max(c.rtol_reached, c.absolute_reached) for p, c in certificates.items()}
