@@ -375,3 +375,27 @@ def test_frozen_ids_ignore_names_interned_later() -> None:
     early = small.frozen()
     small.intern(pa.array(["c", "d"]))  # same arrays, new cells
     assert early.lookup("c") is None and early.lookup("b") == 1 and small.lookup("c") == 2
+
+
+def test_no_state_yet_and_a_stalled_loop_are_503() -> None:
+    """The listener itself (same code as in ``ranktide run``) before a state is published, asked over HTTP."""
+    from ranktide.stream.api import ApiSettings, LiveState, ReadApi
+    from ranktide.stream.metrics import Metrics, start_metrics_server
+
+    live = LiveState(phase="restoring")
+    server = start_metrics_server("127.0.0.1:0", Metrics(), ReadApi(live, ApiSettings(stall_seconds=0.5)))
+    port = server.server_address[1]
+    try:
+        for path in ("/v1/top", "/v1/scores?node=a", "/v1/status"):
+            body = _error(port, path, None, 503)
+            assert "restoring" in body["error"]
+            assert get(port, path)[1]["retry-after"] == "1"
+        status, _, ready = get(port, "/readyz")
+        assert status == 503 and "not serving yet (restoring)" in ready["reasons"]
+        assert get(port, "/healthz")[0] == 200
+        live.last_turn -= 1.0  # the loop has not turned for a second, above stall_seconds
+        status, _, health = get(port, "/healthz")
+        assert status == 503 and health["status"] == "stalled"
+    finally:
+        server.shutdown()
+        server.server_close()
