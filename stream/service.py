@@ -211,8 +211,7 @@ class Service:
         self._owner = True
         self._events_at_snapshot = self.counters.events_applied + self.counters.events_rejected
         self._last_snapshot = time.monotonic()
-        # (an empty engine is not settled: that collapses its thresholds, see test_known_engine_bugs)
-        self._unsettled = self.ranker.engine.n_nodes > 0
+        self._unsettled = self.ranker.engine.n_nodes > 0  # an empty engine has nothing to settle
         self._view_due = True
         self._settle()  # publishes the restored state
         self.metrics.lag = self.source.lag()
@@ -378,7 +377,7 @@ class Service:
         """
         started = time.monotonic()
         eng = self.ranker.engine
-        if certificates is None and eng.n_nodes == 0:  # nothing to settle (and settling it would harm)
+        if certificates is None and eng.n_nodes == 0:  # nothing to settle
             certificates = {name: eng.certificate(name) for name in eng.profiles}
         elif certificates is None:
             certificates = eng.settle_certified()

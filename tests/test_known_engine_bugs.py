@@ -127,16 +127,14 @@ def test_bound_holds_after_a_seed_weight_goes_up_and_back() -> None:
     assert error <= ranker.certified_bound("trusted")
 
 
-@pytest.mark.xfail(strict=True, reason="settle() on an empty engine collapses the global push threshold for good")
 def test_settling_an_empty_engine_does_not_make_later_settles_dearer() -> None:
     """Settle an engine with no node, then load a graph and settle: the work must be what it is without.
 
-    ``Engine.settle`` on an empty engine lowers the global threshold down its
-    ladder to about 5e-23 (the sum shift of an empty estimate is not a
-    number), and thresholds only move down, so every later settle works to
-    the rounding floor. Seen from outside: many times the edge touches of the
-    same settle on an engine that was not settled empty. (The service no
-    longer settles an empty engine; an embedding caller still can.)
+    ``Engine.settle`` on an empty engine used to lower the global threshold
+    down its ladder to about 5e-23 (the sum shift of an empty estimate is
+    not a number), and thresholds only moved down, so every later settle
+    worked to the rounding floor: 22 times the edge touches of the same
+    settle on an engine that was not settled empty.
     """
     import numpy as np
 
