@@ -231,5 +231,9 @@ def run_audit(root: Path, snapshot: str | None, every: bool, k: int, as_json: bo
     if as_json:
         print(json.dumps(results[0] if len(results) == 1 and not every else results, indent=2))
     if plot is not None and results:
-        print(f"plot: {plot_series(results, plot)}", file=sys.stderr)
+        try:
+            print(f"plot: {plot_series(results, plot)}", file=sys.stderr)
+        except OSError as exc:
+            print(f"ranktide audit: error: cannot write the picture {plot}: {exc.strerror or exc}", file=sys.stderr)
+            return 3
     return 1 if failed else 0

@@ -7,10 +7,6 @@ import sys
 from datetime import datetime, timezone
 from pathlib import Path
 
-import pyarrow as pa
-import pyarrow.compute as pc
-import pyarrow.parquet as pq
-
 from ranktide.stream.snapshots import SnapshotError, read_manifest, snapshot_dirs
 
 
@@ -98,6 +94,9 @@ def describe_newest(root: Path, as_json: bool = False) -> int:
 
 
 def _profile_scores(root: Path, profile: str):
+    import pyarrow.compute as pc  # here, not at start-up: status reads no Parquet
+    import pyarrow.parquet as pq
+
     path = newest(root)
     table = pq.read_table(path / "scores.parquet")
     part = table.filter(pc.equal(table["profile"], profile))
@@ -113,6 +112,8 @@ def print_top(root: Path, k: int, profile: str, as_json: bool = False) -> int:
     except SnapshotError as exc:
         print(f"ranktide top: error: {exc}", file=sys.stderr)
         return 2
+    import pyarrow.compute as pc
+
     order = pc.sort_indices(part, sort_keys=[("score", "descending"), ("node", "ascending")])
     best = part.take(order[: max(k, 0)])
     rows = list(zip(best["node"].to_pylist(), best["score"].to_pylist()))
@@ -132,6 +133,9 @@ def print_scores(root: Path, nodes: list[str], profile: str, as_json: bool = Fal
     except SnapshotError as exc:
         print(f"ranktide score: error: {exc}", file=sys.stderr)
         return 2
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
     found = part.filter(pc.is_in(part["node"], value_set=pa.array(nodes, pa.string())))
     by_node = dict(zip(found["node"].to_pylist(), found["score"].to_pylist()))
     if as_json:

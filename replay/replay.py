@@ -13,7 +13,7 @@ import numpy as np
 from ranktide.solver import EventBatch, Ranker
 from ranktide.stream.events import Limits
 from ranktide.stream.logs import LogChunk, read_log, row_count_hint, seed_personalizations
-from ranktide.stream.snapshots import Counters, load_snapshot, write_snapshot
+from ranktide.stream.snapshots import Counters, OutputError, load_snapshot, write_snapshot
 
 
 @dataclass
@@ -107,6 +107,13 @@ class RejectsWriter:
         p = chunk.parsed
         if not p.reasons:
             return
+        try:
+            self._write(chunk, upto)
+        except OSError as exc:
+            raise OutputError(f"cannot write the rejects file {self.path}: {exc.strerror or exc}") from exc
+
+    def _write(self, chunk: LogChunk, upto: int | None) -> None:
+        p = chunk.parsed
         if self._fh is None:
             self.path.parent.mkdir(parents=True, exist_ok=True)
             self._fh = open(self.path, "a", encoding="utf-8")
@@ -125,8 +132,11 @@ class RejectsWriter:
 
     def close(self) -> None:
         if self._fh is not None:
-            self._fh.close()
-            self._fh = None
+            fh, self._fh = self._fh, None
+            try:
+                fh.close()
+            except OSError as exc:
+                raise OutputError(f"cannot write the rejects file {self.path}: {exc.strerror or exc}") from exc
 
 
 def apply_events(ranker: Ranker, batch: EventBatch, counters: Counters, micro_batch: int | None) -> None:

@@ -38,8 +38,9 @@ from ranktide.stream.config import ServiceConfig
 from ranktide.stream.events import Limits
 from ranktide.stream.logs import seed_personalizations
 from ranktide.stream.metrics import Metrics, start_metrics_server
-from ranktide.stream.snapshots import Counters, SnapshotError, load_latest, prune, write_snapshot
-from ranktide.stream.sources import Source, SourceChunk, open_source
+from ranktide.stream.snapshots import (Counters, SnapshotError, check_writable, load_latest, prune,
+                                       write_snapshot)
+from ranktide.stream.sources import Source, SourceChunk, kafka_config, open_source
 
 log = logging.getLogger("ranktide.service")
 
@@ -64,10 +65,10 @@ class RejectsSink:
             self.topic = target[len("kafka:"):]
             if not bootstrap:
                 raise SnapshotError("a kafka: rejects sink needs a kafka:// source to name the brokers")
-            self._producer = Producer({"bootstrap.servers": bootstrap, **kafka_props})
+            self._producer = Producer(kafka_config(bootstrap, kafka_props))
         else:
             self.path = Path(target[len("file:"):] if target.startswith("file:") else (target or Path(out) / "rejects.jsonl"))
-            self.path.parent.mkdir(parents=True, exist_ok=True)
+            check_writable(self.path.parent, "rejects file", self.path)
 
     def size(self) -> int:
         return self.path.stat().st_size if self.path is not None and self.path.exists() else 0
@@ -120,7 +121,7 @@ class ScoreFeed:
     def __post_init__(self) -> None:
         from confluent_kafka import Producer
 
-        self._producer = Producer({"bootstrap.servers": self.bootstrap, "linger.ms": 50, **self.props})
+        self._producer = Producer(kafka_config(self.bootstrap, self.props, **{"linger.ms": 50}))
 
     def due(self) -> bool:
         return time.monotonic() - self._last >= self.interval
@@ -235,9 +236,14 @@ class Service:
         cfg = self.cfg
         log.info("starting with %s", json.dumps(cfg.redacted(), default=str))
         bootstrap = cfg.source[len("kafka://"):].split("/")[0] if cfg.source.startswith("kafka://") else None
+        check_writable(self.out, "snapshot root")  # before any long wait or work
+        if bootstrap:
+            from ranktide.stream.sources import wait_for_brokers
+
+            wait_for_brokers(bootstrap, cfg.kafka, cfg.connect_timeout)
         rejects = RejectsSink(cfg.rejects, self.out, cfg.kafka, bootstrap)
         self.source = open_source(cfg.source, cfg.group, cfg.kafka, self.limits, cfg.poll_records,
-                                  cfg.file_chunk_bytes)
+                                  cfg.file_chunk_bytes, finite=cfg.stop_at_end)
         # the listener comes first, so that probes are answered (503) while restoring
         server = start_metrics_server(cfg.metrics, self.metrics, ReadApi(self.live, self.api_settings())) \
             if cfg.metrics else None
