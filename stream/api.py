@@ -35,9 +35,9 @@ from urllib.parse import parse_qs, urlsplit
 import numpy as np
 
 from ranktide.solver import GLOBAL, Ranker
-from ranktide.solver.bounds import Certificate
+from ranktide.solver.bounds import Certificate, ranks_between
 from ranktide.solver.ids import FrozenIds
-from ranktide.stream.snapshots import _contract_facts
+from ranktide.stream.snapshots import contract_facts
 
 JSON = "application/json"
 #: /v1/top answers kept per view and profile (distinct k values).
@@ -46,29 +46,6 @@ log = logging.getLogger("ranktide.api")
 
 
 # ------------------------------------------------------------------ bounds and ranks
-
-
-def rank_ranges(lo_sorted: np.ndarray, hi_sorted: np.ndarray, lo: np.ndarray,
-                hi: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Best and worst certified ranks (1 = highest score) of nodes with intervals ``[lo, hi]``.
-
-    Parameters
-    ----------
-    lo_sorted, hi_sorted : float arrays
-        Every node's interval ends, sorted ascending.
-    lo, hi : float arrays
-        The intervals of the nodes asked about (``lo <= hi``).
-
-    Returns
-    -------
-    best, worst : int64 arrays
-        ``best = 1 + #{w : lo(w) > hi(v)}`` and ``worst = 1 + #{w != v : hi(w) >= lo(v)}``
-        (the count ``#{w : hi(w) >= lo(v)}`` includes ``v`` itself).
-    """
-    n = lo_sorted.shape[0]
-    best = 1 + (n - np.searchsorted(lo_sorted, hi, side="right"))
-    worst = n - np.searchsorted(hi_sorted, lo, side="left")
-    return best.astype(np.int64), worst.astype(np.int64)
 
 
 class ProfileView:
@@ -101,7 +78,7 @@ class ProfileView:
     def ranks(self, idx: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         lo_sorted, hi_sorted, _, _ = self.sorted_arrays()
         s, b = self.scores[idx], self.bounds[idx]
-        return rank_ranges(lo_sorted, hi_sorted, s - b, s + b)
+        return ranks_between(lo_sorted, hi_sorted, s - b, s + b)
 
     def top(self, k: int) -> tuple[np.ndarray, bool]:
         """Ids of the ``k`` best nodes, and whether that set is certified.
@@ -397,7 +374,7 @@ class ReadApi:
                 "damping": view.damping, "rtol": view.rtol, "tolerance": view.tolerance,
                 "certified_top": view.certified_top, **view.counters,
                 "certified_bound": {name: _finite(p.l1_bound) for name, p in view.profiles.items()},
-                "profiles": {name: _contract_facts(p.cert, p.is_global) for name, p in view.profiles.items()},
+                "profiles": {name: contract_facts(p.cert, p.is_global) for name, p in view.profiles.items()},
                 "positions": view.positions, "lag": self.state.lag, "ready": ready,
                 "last_snapshot": self.state.last_snapshot, "loop_turns": self.state.loop_turns}
         if reasons:

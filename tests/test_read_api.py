@@ -28,7 +28,7 @@ import numpy as np
 import pytest
 
 from ranktide.solver.ids import NodeIds
-from ranktide.stream.api import rank_ranges
+from ranktide.solver.bounds import ranks_between
 from stream_helpers import CHILDREN, Stream, ranktide
 
 TOLERANCE = 1e-6
@@ -354,7 +354,7 @@ def test_rank_ranges_match_a_brute_force_count() -> None:
         s[: n // 3] = s[0]  # ties
         b = rng.random(n) * rng.choice([0.0, 0.01, 0.3])
         lo, hi = s - b, s + b
-        best, worst = rank_ranges(np.sort(lo), np.sort(hi), lo, hi)
+        best, worst = ranks_between(np.sort(lo), np.sort(hi), lo, hi)
         for v in range(n):
             others = np.arange(n) != v
             assert best[v] == 1 + np.sum(lo > hi[v])
