@@ -199,6 +199,7 @@ class _Profile:
         self.rtol_reached = self.absolute_reached = 0.0
         self.unlisted = 0.0
         self.rho = 0.0
+        self.max_scale = 0.0  # max |x| / sum x: the bounds' rounding floor counts it
 
     def facts(self, n_nodes: int) -> dict:
         def fin(x: float) -> float | None:
@@ -327,7 +328,8 @@ def _bound_expr(p: _Profile, xbar_g):
         return F.lit(t.l1)
     err = F.lit(0.0) if t.rho == 0.0 else F.lit(t.rho) * xbar_g
     raw = (err + F.abs(x) / F.lit(t.total) * F.lit(t.drift)) / F.lit(t.total - t.drift)
-    return F.greatest(F.least(raw, F.lit(t.l1)), F.lit(ROUNDING_FLOOR) * F.abs(x) / F.lit(t.total))
+    scale = F.abs(x) / F.lit(t.total)
+    return F.greatest(F.least(raw, F.lit(t.l1)), F.lit(ROUNDING_FLOOR) * (scale + F.lit(p.max_scale)))
 
 
 def _score_expr(p: _Profile):
@@ -354,6 +356,7 @@ def _certify(nxt, state_of: list[_Profile], k: int, settings: Settings) -> dict[
         aggs += [F.max(F.abs(r)).alias(f"rho{j}"), F.sum(F.abs(r)).alias(f"r1{j}"), F.sum(x).alias(f"tot{j}"),
                  F.sum(F.abs(x)).alias(f"abs{j}"), F.sum(F.when(x > 0, 1).otherwise(0)).alias(f"pos{j}"),
                  F.min(F.when(x > 0, x)).alias(f"minpos{j}"), F.max(x).alias(f"max{j}"),
+                 F.max(F.abs(x)).alias(f"amax{j}"),
                  F.max_by(F.col("x0"), x).alias(f"gat{j}")]
     row = nxt.agg(*aggs).collect()[0]
     rho_g = float(row["rho0"] or 0.0)
@@ -365,6 +368,7 @@ def _certify(nxt, state_of: list[_Profile], k: int, settings: Settings) -> dict[
         sum_err = 0.0 if p.rho == 0.0 else p.rho * sum_xbar
         p.terms = bound_terms(p.rho, float(row[f"r1{j}"] or 0.0), float(row[f"tot{j}"] or 0.0),
                               float(row[f"abs{j}"] or 0.0), sum_err)
+        p.max_scale = float(row[f"amax{j}"] or 0.0) / p.terms.total if p.terms.total > 0.0 else 0.0
         p.rtol_reached = p.absolute_reached = 0.0 if p.empty else _lower_rtol(p, row, rho_g)
     if not all(profile_met(settings.targets, p.rtol_reached, 0.0, p.terms.l1) for p in state_of):
         return {p.name: (p.rho, p.rtol_reached, p.terms.l1) for p in state_of}
@@ -374,17 +378,8 @@ def _certify(nxt, state_of: list[_Profile], k: int, settings: Settings) -> dict[
         if p.empty:
             p.threshold = p.rtol_reached = p.absolute_reached = p.unlisted = 0.0
             continue
-        positives = int(row[f"pos{j}"])
-        top = positives if p.top is None else min(p.top, positives)
-        if positives == 0 or p.terms.total <= 0.0:
-            kth_x = 0.0
-        elif top >= positives:
-            kth_x = float(row[f"minpos{j}"])
-        else:
-            best = nxt.filter(F.col(f"x{j}") > 0).select(f"x{j}").orderBy(F.col(f"x{j}").desc()).limit(top)
-            kth_x = float(best.agg(F.min(f"x{j}")).collect()[0][0])
-        p.threshold = kth_x / p.terms.total if p.terms.total > 0.0 else 0.0
         score, bound = _score_expr(p), _bound_expr(p, xbar_g)
+        p.threshold = _kth_score(nxt, p, row, score)
         in_top = score >= F.lit(p.threshold) if p.threshold > 0.0 else score > 0.0
         lower = score - bound
         second += [
@@ -399,6 +394,28 @@ def _certify(nxt, state_of: list[_Profile], k: int, settings: Settings) -> dict[
             if not p.empty:
                 _take_certificate(p, row2)
     return {p.name: (p.rho, max(p.rtol_reached, p.absolute_reached), p.terms.l1) for p in state_of}
+
+
+def _kth_score(nxt, p: _Profile, row, score) -> float:
+    """The K-th best significant score (``solver.bounds.certify``): scores within the rounding floor of zero never set it."""
+    from pyspark.sql import functions as F
+
+    j, total = p.j, p.terms.total
+    positives = int(row[f"pos{j}"])
+    if positives == 0 or total <= 0.0:
+        return 0.0
+    floor = ROUNDING_FLOOR * (float(row[f"max{j}"]) / total)
+    top = positives if p.top is None else min(p.top, positives)
+    if top >= positives:
+        kth = float(row[f"minpos{j}"]) / total
+    else:
+        best = nxt.select(score.alias("score")).orderBy(F.col("score").desc()).limit(top)
+        kth = float(best.agg(F.min("score")).collect()[0][0])
+    if kth > floor:
+        return kth
+    # fewer than K significant scores: the smallest significant one
+    smallest = nxt.select(score.alias("score")).filter(F.col("score") > floor).agg(F.min("score")).collect()[0][0]
+    return 0.0 if smallest is None else float(smallest)
 
 
 def _take_certificate(p: _Profile, row) -> None:

@@ -230,11 +230,6 @@ def snapshot_tables(ranker: Ranker, certificates: dict[str, Certificate]) -> dic
     return _tables(ranker, certificates)
 
 
-def contract_facts(cert: Certificate, is_global: bool) -> dict:
-    """The manifest's per-profile facts of the contract ``cert`` meets."""
-    return _contract_facts(cert, is_global)
-
-
 def _finite(x: float) -> float | None:
     """JSON has no infinity: an uncertified figure is written as null."""
     import numpy as np
@@ -242,7 +237,7 @@ def _finite(x: float) -> float | None:
     return float(x) if np.isfinite(x) else None
 
 
-def _contract_facts(cert: Certificate, is_global: bool) -> dict:
+def contract_facts(cert: Certificate, is_global: bool) -> dict:
     """The per-node contract a profile's published scores meet (manifest ``profiles``)."""
     unlisted = cert.bounds[cert.scores == 0.0]
     return {
@@ -294,7 +289,7 @@ def write_snapshot(
         "edges": eng.n_edges,
         "profiles": {
             name: {"estimate_sum": float(eng.P[k, : eng.n_nodes].sum()),
-                   **_contract_facts(certificates[name], k == 0)}
+                   **contract_facts(certificates[name], k == 0)}
             for k, name in enumerate(eng.profiles)
         },
     }
