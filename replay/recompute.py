@@ -328,8 +328,7 @@ def parse_spark_conf(items: list[str] | None) -> dict[str, str]:
 
 def add_seeds(inp: RecomputeInput, personalizations: list[tuple[str, Path]] | None) -> None:
     """Add (or replace) personalizations from seeds files."""
-    from ranktide.replay.logs import LogError
-    from ranktide.replay.replay import read_seeds_file
+    from ranktide.stream.logs import LogError, read_seeds_file
 
     for name, path in personalizations or []:
         try:

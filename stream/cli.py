@@ -235,12 +235,9 @@ def _cmd_run(args: argparse.Namespace) -> int:
         "score_topic": args.score_topic, "metrics": args.metrics,
         "log_format": "json" if args.log_json else None, "stop_at_end": True if args.stop_at_end else None,
         "max_id_length": args.max_id_length, "max_message_bytes": args.max_message_bytes,
-<<<<<<< HEAD
         "recompute_interval": args.recompute_interval, "recompute_engine": args.recompute_engine,
-=======
         "api_token": args.api_token, "api_allow_no_token": True if args.api_allow_no_token else None,
         "ready_max_lag": args.ready_max_lag,
->>>>>>> main
         "connect_timeout": args.connect_timeout,
     }
     if args.personalization:

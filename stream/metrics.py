@@ -29,7 +29,6 @@ class Metrics:
     bounds: dict[str, float] = field(default_factory=dict)
     rtol_reached: dict[str, float] = field(default_factory=dict)
     lag: dict[str, int] = field(default_factory=dict)
-<<<<<<< HEAD
     recompute_last: float = 0.0
     recompute_seconds: float = 0.0
     recompute_ok: int | None = None
@@ -37,11 +36,9 @@ class Metrics:
     recompute_failures: int = 0
     recompute_error: dict[str, float] = field(default_factory=dict)
     recompute_relative_error: dict[str, float] = field(default_factory=dict)
-=======
     api_requests: int = 0
     api_cpu_seconds: float = 0.0
     _api_lock: threading.Lock = field(default_factory=threading.Lock)
->>>>>>> main
     _rate_window: list[tuple[float, int, int]] = field(default_factory=list)
 
     def record_batch(self, applied: int, rejected: int) -> None:

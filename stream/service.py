@@ -275,12 +275,8 @@ class Service:
             self._take_over(rejects)
         feed = ScoreFeed(cfg.score_topic, bootstrap, cfg.kafka, cfg.score_threshold, cfg.score_interval) \
             if cfg.score_topic and bootstrap else None
-<<<<<<< HEAD
-        server = start_metrics_server(cfg.metrics, self.metrics) if cfg.metrics else None
         recompute = RecomputeJob(self.out, cfg.recompute_interval, cfg.recompute_engine, cfg.recompute_master,
                                  self.metrics)
-=======
->>>>>>> main
         thresholds = gc.get_threshold()
         # the Kafka client makes one object per message: with the default thresholds the
         # collector runs hundreds of times per batch over objects that all live on

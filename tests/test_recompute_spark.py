@@ -23,7 +23,7 @@ pyspark = pytest.importorskip("pyspark", reason="pyspark is in the test extra: p
 
 from ranktide.replay.audit import run_audit_against  # noqa: E402
 from ranktide.replay.recompute import RecomputeInput, Settings, recompute_local, resolve_input, settings_for  # noqa: E402
-from ranktide.replay.replay import read_seeds_file  # noqa: E402
+from ranktide.stream.logs import read_seeds_file  # noqa: E402
 from ranktide.replay.spark_recompute import recompute_spark  # noqa: E402
 from ranktide.solver.recompute import Targets  # noqa: E402
 from ranktide.stream.snapshots import load_snapshot  # noqa: E402
