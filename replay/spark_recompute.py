@@ -34,8 +34,8 @@ from ranktide.solver import GLOBAL
 from ranktide.solver.bounds import ROUNDING_FLOOR
 from ranktide.solver.engine import MAX_WEIGHT, MIN_WEIGHT
 from ranktide.solver.recompute import bound_terms, profile_met
-from ranktide.replay.recompute import (RecomputeError, RecomputeInput, Settings, print_progress, recompute_manifest,
-                                       write)
+from ranktide.replay.recompute_common import (RecomputeError, RecomputeInput, Settings, print_progress,
+                                              recompute_manifest, write)
 
 #: Shuffle partitions in local mode: the default 200 made each iteration about 7x slower (issue 12).
 LOCAL_SHUFFLE_PARTITIONS = "4"
