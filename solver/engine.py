@@ -592,7 +592,7 @@ class Engine:
         """Global sweeps of profile ``k`` until its bound is met or rounding stalls them.
 
         The loop runs here, not in a kernel: the parallel scatter must be
-        called from Python (see :func:`solver.kernels.scatter_slots`).
+        called from Python (see :func:`solver.kernels.scatter_nodes`).
         Returns the sum of the estimate.
         """
         n = self.n_nodes
@@ -609,13 +609,20 @@ class Engine:
         self._parked_max[k] = 0.0
         return s_p
 
+    def _scatter(self, out: np.ndarray, coef: np.ndarray) -> None:
+        """``out += P^T``-like scatter of ``coef`` over every edge (``out`` has one entry per node)."""
+        g = self.graph.arrays
+        n = self.n_nodes
+        bounds = kernels.chunk_bounds(n, g.out_degree, kernels.SWEEP_CHUNKS)
+        kernels.scatter_nodes(out[:n], self._spill, coef, bounds, g.start, g.out_degree, g.dst, g.weight,
+                              self.graph.unit_weights)
+
     def _sweep(self, k: int) -> tuple[float, float, float]:
         """One global sweep ``p += a r; r = d P^T r``; returns ``(||r||_1, sum p, ||p||_1)``."""
         g = self.graph.arrays
         n = self.n_nodes
         kernels.sweep_begin(k, self.P, self.R, self._tmp, n, g.out_weight, self.teleport, self.damping)
-        kernels.scatter_slots(self.R[k], self._spill, self._tmp, n, g.src, g.dst, g.weight,
-                              int(g.counters[0]), self.graph.unit_weights)
+        self._scatter(self.R[k], self._tmp)
         sums = kernels.profile_sums(k, self.P, self.R, n)
         self._psum[k] = sums[1]
         return sums
@@ -654,8 +661,7 @@ class Engine:
         fresh = np.zeros(n)
         kernels.exact_residual_begin(k, n, self.P, self.S, g.out_weight, self.teleport, self.damping,
                                      self._tmp, fresh)
-        kernels.scatter_slots(fresh, self._spill, self._tmp, n, g.src, g.dst, g.weight,
-                              int(g.counters[0]), self.graph.unit_weights)
+        self._scatter(fresh, self._tmp)
         scale = max(float(np.abs(self.S[k, :n]).sum()), 1.0)
         drift = float(np.abs(fresh - self.R[k, :n]).max(initial=0.0)) / scale
         self.R[k, :n] = fresh

@@ -50,7 +50,7 @@ LOCAL_REPAIR_MAX_DEGREE = 64
 # between compiled functions passes each array with reference counting, which
 # made the push loop three times slower than its memory traffic.
 
-#: Fixed number of slot chunks a global sweep is split into (see :func:`scatter_slots`).
+#: Fixed number of node chunks a global sweep is split into (see :func:`scatter_nodes`).
 SWEEP_CHUNKS = 2
 
 # ---------------------------------------------------------------- hash table
@@ -413,17 +413,41 @@ def _done(rho, s_p, abs_p, tol):
     return rho * (1.0 + abs_p / s_p) <= tol * (s_p - rho)
 
 
-@njit(parallel=True, cache=True, nogil=True)
-def scatter_slots(out, spill, coef, n, e_src, e_dst, e_w, top, unit):
-    """``out[dst] += coef[src] * w`` over the live slots ``[0, top)``, on all threads.
+@njit(cache=True, nogil=True)
+def chunk_bounds(n, out_degree, chunks):
+    """Node ranges of ``chunks`` fixed chunks holding about equal numbers of out-edges.
 
-    The slots are cut into :data:`SWEEP_CHUNKS` fixed chunks: chunk 0 adds into
-    ``out``, chunk ``c > 0`` into ``spill[c - 1]``, and the spills are added
-    afterwards in order. The chunk count, not the thread count, fixes the
-    order of every floating-point sum, so results do not depend on how many
-    threads run.
-    With ``unit`` (every weight is 1) the weights are not read: the scatter is
-    bound by memory traffic, and this drops a third of it.
+    They depend on the graph only, never on the thread count (see :func:`scatter_nodes`).
+    """
+    total = 0
+    for u in range(n):
+        total += out_degree[u]
+    bounds = np.zeros(chunks + 1, np.int64)
+    bounds[chunks] = n
+    c = 1
+    seen = 0
+    for u in range(n):
+        while c < chunks and seen >= total * c // chunks:
+            bounds[c] = u
+            c += 1
+        seen += out_degree[u]
+    while c < chunks:
+        bounds[c] = n
+        c += 1
+    return bounds
+
+
+@njit(parallel=True, cache=True, nogil=True)
+def scatter_nodes(out, spill, coef, bounds, start, out_degree, e_dst, e_w, unit):
+    """``out[v] += coef[u] * w(u, v)`` over every edge, on all threads.
+
+    Each node's out-edges are read in one run from its block (no slack, no
+    source array). The nodes are cut into fixed chunks (:func:`chunk_bounds`):
+    chunk 0 adds into ``out``, chunk ``c > 0`` into ``spill[c - 1]``, and the
+    spills are added afterwards in order. The chunk count, not the thread
+    count, fixes the order of every floating-point sum, so results do not
+    depend on how many threads run. With ``unit`` (every weight is 1) the
+    weights are not read: the scatter is bound by memory traffic.
 
     Call it from Python only, never from another compiled function: a cached
     caller of a ``parallel=True`` function can be loaded in a later process
@@ -433,23 +457,24 @@ def scatter_slots(out, spill, coef, n, e_src, e_dst, e_w, top, unit):
     #8578 describes the same failure. ``tests/test_kernel_cache.py`` runs the
     orders of first commands that once crashed.
     """
-    for c in prange(SWEEP_CHUNKS):
-        lo = top * c // SWEEP_CHUNKS
-        hi = top * (c + 1) // SWEEP_CHUNKS
+    chunks = bounds.shape[0] - 1
+    n = out.shape[0]
+    for c in prange(chunks):
         target = out if c == 0 else spill[c - 1]
         if c > 0:
             target[:n] = 0.0
-        if unit:
-            for e in range(lo, hi):
-                x = e_src[e]
-                if x >= 0:
-                    target[e_dst[e]] += coef[x]
-        else:
-            for e in range(lo, hi):
-                x = e_src[e]
-                if x >= 0:
-                    target[e_dst[e]] += coef[x] * e_w[e]
-    for c in range(1, SWEEP_CHUNKS):
+        for u in range(bounds[c], bounds[c + 1]):
+            cu = coef[u]
+            if cu == 0.0:
+                continue
+            first = start[u]
+            if unit:
+                for e in range(first, first + out_degree[u]):
+                    target[e_dst[e]] += cu
+            else:
+                for e in range(first, first + out_degree[u]):
+                    target[e_dst[e]] += cu * e_w[e]
+    for c in range(1, chunks):
         for u in range(n):
             out[u] += spill[c - 1, u]
 
@@ -458,8 +483,8 @@ def scatter_slots(out, spill, coef, n, e_src, e_dst, e_w, top, unit):
 def sweep_begin(k, P, R, tmp, n, out_weight, a, d):
     """First half of a global sweep: ``p += a r``; ``tmp = d r / W``; ``r = 0``.
 
-    The second half is ``scatter_slots(R[k], ..., tmp, ...)`` (``r = d P^T r``),
-    called from Python (see :func:`scatter_slots` for why).
+    The second half is ``scatter_nodes(R[k], ..., tmp, ...)`` (``r = d P^T r``),
+    called from Python (see :func:`scatter_nodes` for why).
     """
     for u in range(n):
         ru = R[k, u]
@@ -520,9 +545,9 @@ def settle_profile(
     than ``push_limit`` times the error budget goes to sweeps at once.
 
     Returns ``(sweep, rho, s_p, abs_p)``: with ``sweep`` true the caller
-    continues with global sweeps (:func:`sweep_begin`, :func:`scatter_slots`)
+    continues with global sweeps (:func:`sweep_begin`, :func:`scatter_nodes`)
     until the bound is met; the sweep itself is not called from here (see
-    :func:`scatter_slots`).
+    :func:`scatter_nodes`).
 
     ``stats`` accumulates: [0] pushes, [1] edges touched by pushes,
     [2] sweeps, [3] edges touched by sweeps, [4] local phases.
@@ -630,7 +655,7 @@ def settle_profile(
 def exact_residual_begin(k, n, P, S, out_weight, a, d, tmp, out):
     """First half of ``r = s - p/a + (d/a) P^T p``: ``out = s - p/a``, ``tmp = (d/a) p / W``.
 
-    The caller adds ``P^T tmp`` into ``out`` with :func:`scatter_slots` (from Python).
+    The caller adds ``P^T tmp`` into ``out`` with :func:`scatter_nodes` (from Python).
     """
     for u in range(n):
         out[u] = S[k, u] - P[k, u] / a
