@@ -148,7 +148,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
     if code == 0 and not args.quiet:
         from ranktide.replay.reading import describe_newest
 
-        describe_newest(Path(cfg.out))
+        describe_newest(Path(cfg.out), command="run")
     return code
 
 
@@ -167,19 +167,81 @@ def _embedded_default(args: argparse.Namespace) -> dict:
 def _cmd_status(args: argparse.Namespace) -> int:
     from ranktide.replay.reading import describe_newest
 
-    return describe_newest(args.root, as_json=args.json)
+    return describe_newest(args.root, as_json=args.json, name=args.snapshot)
+
+
+def _cmd_snapshots(args: argparse.Namespace) -> int:
+    from ranktide.replay.reading import list_snapshots
+
+    return list_snapshots(args.root, as_json=args.json)
 
 
 def _cmd_top(args: argparse.Namespace) -> int:
     from ranktide.replay.reading import print_top
 
-    return print_top(args.root, args.k, args.profile, as_json=args.json)
+    return print_top(args.root, args.k, args.profile, as_json=args.json, name=args.snapshot)
 
 
 def _cmd_score(args: argparse.Namespace) -> int:
     from ranktide.replay.reading import print_scores
 
-    return print_scores(args.root, args.nodes, args.profile, as_json=args.json)
+    return print_scores(args.root, args.nodes, args.profile, as_json=args.json, name=args.snapshot)
+
+
+def _at_least_one(text: str) -> int:
+    """A count of at least 1 (argparse type)."""
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number >= 1, got {text!r}") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"must be at least 1, got {text}")
+    return value
+
+
+_ROOT_HELP = "snapshot root folder, or one snapshot folder itself"
+_SNAPSHOT_HELP = "read this snapshot of ROOT (e.g. snap-00000003) instead of the newest valid one"
+_JSON_HELP = "print one JSON object (see README, 'Reading commands and --json')"
+
+
+def _add_reading_parsers(sub) -> None:
+    """status, snapshots, top and score: the commands that read a snapshot root."""
+    epilog = ("Only a snapshot whose files pass their sha256 checksums is read: by default the newest "
+              "valid one, naming on stderr each newer one skipped and why. Exit 2 when none is valid.")
+    p = sub.add_parser("status", help="describe the newest valid snapshot in words", epilog=epilog,
+                       description="Describe a snapshot: sequence, time, graph size, events, certified bounds "
+                                   "and source positions.")
+    p.add_argument("root", type=Path, metavar="ROOT", help=_ROOT_HELP)
+    p.add_argument("--snapshot", metavar="NAME", help=_SNAPSHOT_HELP)
+    p.add_argument("--json", action="store_true", help=_JSON_HELP + "; the manifest is under 'manifest'")
+    p.set_defaults(func=_cmd_status)
+
+    p = sub.add_parser("snapshots", help="list every snapshot with its sequence, time, events, bounds and validity",
+                       description="List every snapshot under ROOT, oldest first, checking each file against "
+                                   "its sha256. Exit 0 when the list is printed (invalid snapshots included), "
+                                   "2 when ROOT holds no snapshot.")
+    p.add_argument("root", type=Path, metavar="ROOT", help=_ROOT_HELP)
+    p.add_argument("--json", action="store_true", help=_JSON_HELP + "; rows under 'snapshots'")
+    p.set_defaults(func=_cmd_snapshots)
+
+    p = sub.add_parser("top", help="the best-scored nodes of the newest valid snapshot", epilog=epilog,
+                       description="Print the k best-scored nodes of a profile: rank, node, score "
+                                   "(ties in name order).")
+    p.add_argument("root", type=Path, metavar="ROOT", help=_ROOT_HELP)
+    p.add_argument("-k", type=_at_least_one, default=20, help="how many nodes, at least 1 (default 20)")
+    p.add_argument("--profile", default="global", help="profile name (default global)")
+    p.add_argument("--snapshot", metavar="NAME", help=_SNAPSHOT_HELP)
+    p.add_argument("--json", action="store_true", help=_JSON_HELP + "; rows under 'nodes'")
+    p.set_defaults(func=_cmd_top)
+
+    p = sub.add_parser("score", help="scores of named nodes in the newest valid snapshot", epilog=epilog,
+                       description="Print the score of each named node; exit 1 when one is unknown.")
+    p.add_argument("root", type=Path, metavar="ROOT", help=_ROOT_HELP)
+    p.add_argument("nodes", nargs="+", metavar="NODE", help="node ids to look up")
+    p.add_argument("--profile", default="global", help="profile name (default global)")
+    p.add_argument("--snapshot", metavar="NAME", help=_SNAPSHOT_HELP)
+    p.add_argument("--json", action="store_true", help=_JSON_HELP + "; rows under 'nodes', unknown score null")
+    p.set_defaults(func=_cmd_score)
 
 
 def _cmd_record(args: argparse.Namespace) -> int:
@@ -273,24 +335,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--quiet", action="store_true", help="do not describe the final snapshot")
     p.set_defaults(func=_cmd_run)
 
-    p = sub.add_parser("status", help="describe the newest snapshot in words")
-    p.add_argument("root", type=Path, help="snapshot root folder")
-    p.add_argument("--json", action="store_true", help="print the manifest as JSON")
-    p.set_defaults(func=_cmd_status)
-
-    p = sub.add_parser("top", help="the best-scored nodes of the newest snapshot")
-    p.add_argument("root", type=Path)
-    p.add_argument("-k", type=int, default=20, help="how many nodes (default 20)")
-    p.add_argument("--profile", default="global", help="profile name (default global)")
-    p.add_argument("--json", action="store_true")
-    p.set_defaults(func=_cmd_top)
-
-    p = sub.add_parser("score", help="scores of named nodes in the newest snapshot")
-    p.add_argument("root", type=Path)
-    p.add_argument("nodes", nargs="+", metavar="NODE")
-    p.add_argument("--profile", default="global")
-    p.add_argument("--json", action="store_true")
-    p.set_defaults(func=_cmd_score)
+    _add_reading_parsers(sub)
 
     p = sub.add_parser("record", help="copy a Kafka topic into a Parquet event log",
                        description="Copy every partition of a topic, from its start, into a Parquet log with "
