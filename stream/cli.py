@@ -79,13 +79,18 @@ def _cmd_replay(args: argparse.Namespace) -> int:
         print("ranktide replay: error: --from keeps the snapshot's damping and tolerance; "
               "drop --damping/--tolerance", file=sys.stderr)
         return 2
+    try:
+        start = None if args.from_snapshot is None else _resolve_from(args.from_snapshot)
+    except SnapshotError as exc:
+        print(f"ranktide replay: error: {exc}", file=sys.stderr)
+        return 2
     options = ReplayOptions(
         damping=0.85 if damping is None else damping,
         tolerance=1e-6 if tolerance is None else tolerance,
         personalizations=dict(args.personalization or []),
         micro_batch=args.micro_batch,
         progress=not args.quiet and sys.stderr.isatty(),
-        from_snapshot=args.from_snapshot,
+        from_snapshot=start,
         until=args.until,
         pace=args.pace,
         snapshot_every=args.snapshot_every,
@@ -100,6 +105,16 @@ def _cmd_replay(args: argparse.Namespace) -> int:
         if len(summary.snapshots) > 1:
             print(f"series         {len(summary.snapshots)} snapshots under {args.out}")
     return 0
+
+
+def _resolve_from(path: Path) -> Path:
+    """``replay --from``: a snapshot folder, or the newest valid snapshot of a root (skips named on stderr)."""
+    from ranktide.stream.snapshots import select_snapshot
+
+    def say(name: str, reason: str) -> None:
+        print(f"ranktide replay: skipping {name}: {reason}", file=sys.stderr)
+
+    return select_snapshot(path, on_skip=say).path
 
 
 class _JsonFormatter(logging.Formatter):
@@ -118,7 +133,8 @@ def _cmd_run(args: argparse.Namespace) -> int:
     from ranktide.stream.snapshots import SnapshotError
 
     overrides = {
-        "source": args.source, "out": args.out, "group": args.group, "tolerance": args.tolerance,
+        "source": args.source, "out": args.out, "group": args.group, "owner_topic": args.owner_topic,
+        "tolerance": args.tolerance,
         "damping": args.damping, "snapshot_interval": args.snapshot_interval,
         "keep_snapshots": args.keep_snapshots, "micro_batch": args.micro_batch,
         "rejects": f"kafka:{args.rejects_topic}" if args.rejects_topic else (f"file:{args.rejects}" if args.rejects else None),
@@ -289,8 +305,9 @@ def build_parser() -> argparse.ArgumentParser:
                    help="settle after every N events, as the service does (default: settle only before "
                         "each snapshot, which is faster and gives the same snapshots within the tolerance)")
     p.add_argument("--from", dest="from_snapshot", type=Path, metavar="SNAPSHOT",
-                   help="start from this snapshot folder instead of an empty graph; the log is read from the "
-                        "snapshot's position in it (a recording skips the messages the snapshot covers)")
+                   help="start from this snapshot folder (or the newest valid snapshot of a root) instead of an "
+                        "empty graph; the log is read from the snapshot's position in it (a recording skips the "
+                        "messages the snapshot covers). ROOT must be empty of snapshots or hold this one")
     p.add_argument("--until", type=_until, metavar="POSITION|TIME",
                    help="stop after this line (row, for Parquet and CSV) or before the first event later than "
                         "this ISO-8601 time")
@@ -317,6 +334,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--source", help="kafka://HOST:PORT/TOPIC or file:PATH")
     p.add_argument("--out", help="snapshot root folder (default ranktide-out)")
     p.add_argument("--group", help="Kafka consumer group (default ranktide)")
+    p.add_argument("--owner-topic", metavar="TOPIC",
+                   help="one-partition Kafka topic whose holder owns the graph among the group's processes "
+                        "(default GROUP.owner; created when missing)")
     add_engine_options(p)
     p.add_argument("--snapshot-interval", type=_positive_float, help="seconds between snapshots (default 60)")
     p.add_argument("--keep-snapshots", type=int, help="snapshots kept, older ones pruned (default 5)")
