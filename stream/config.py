@@ -49,7 +49,9 @@ class ServiceConfig:
         Kafka consumer group.
     owner_topic : str
         One-partition topic whose holder owns the graph among the group's
-        processes (default ``GROUP.owner``, created when missing).
+        processes (default ``GROUP.owner``, created when missing; option
+        ``--owner-topic``, variable ``RANKTIDE_OWNER_TOPIC``). Its consumer
+        group is always ``GROUP.owner``.
     tolerance, damping : float
         Engine parameters.
     snapshot_interval : float
