@@ -64,6 +64,21 @@ class RootLock:
             raise SnapshotError(f"cannot create snapshot root {root}: {exc.strerror or exc}") from exc
 
     @classmethod
+    def _try(cls, root: Path):
+        """The open lock file, locked by this process; RootLocked when another holds it."""
+        fh = cls._open(root)
+        try:
+            fcntl.flock(fh.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            holder = _read_holder(fh)
+            fh.close()
+            raise RootLocked(Path(root), holder) from None
+        except OSError as exc:
+            fh.close()
+            raise SnapshotError(f"cannot lock {Path(root) / LOCK_NAME}: {exc.strerror or exc}") from exc
+        return fh
+
+    @classmethod
     def acquire(cls, root: Path, command: str, **about: str) -> "RootLock":
         """Take the lock now or raise :class:`RootLocked` naming the holder.
 
@@ -84,16 +99,7 @@ class RootLock:
         SnapshotError
             The root or the lock file cannot be created.
         """
-        fh = cls._open(root)
-        try:
-            fcntl.flock(fh.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
-        except BlockingIOError:
-            holder = _read_holder(fh)
-            fh.close()
-            raise RootLocked(Path(root), holder) from None
-        except OSError as exc:
-            fh.close()
-            raise SnapshotError(f"cannot lock {Path(root) / LOCK_NAME}: {exc.strerror or exc}") from exc
+        fh = cls._try(root)
         fh.seek(0)
         fh.truncate()
         fh.write(json.dumps({"pid": os.getpid(), "command": command, **about}) + "\n")
@@ -122,10 +128,10 @@ class RootLock:
         if not (Path(root) / LOCK_NAME).exists():
             return None
         try:
-            lock = cls.acquire(root, "probe")
+            fh = cls._try(root)
         except RootLocked as exc:
             return exc.holder
-        lock.release()
+        fh.close()  # closing drops the lock; the last holder's record stays as it was
         return None
 
     def release(self) -> None:
