@@ -171,8 +171,8 @@ def plot_series(results: list[dict], path: Path) -> Path:
     return path
 
 
-def _targets(root: Path, snapshot: str | None, every: bool) -> tuple[list[Path], bool]:
-    """The snapshot folders to audit, and whether a newer one was skipped for failing its checks.
+def _targets(root: Path, snapshot: str | None, every: bool) -> tuple[list[Path], list[dict]]:
+    """The snapshot folders to audit, and the newer ones skipped for failing their checks.
 
     Raises
     ------
@@ -184,29 +184,29 @@ def _targets(root: Path, snapshot: str | None, every: bool) -> tuple[list[Path],
         folder = root if is_snapshot_folder(root) else root / snapshot
         if (snapshot and folder.name != snapshot) or not folder.is_dir():
             raise SnapshotError(f"{root}: no snapshot named {snapshot}")
-        return [folder], False
+        return [folder], []
     if every:
         dirs = snapshot_dirs(root)
         if not dirs:
             raise SnapshotError(f"{root}: no snapshot")
-        return dirs, False
+        return dirs, []
 
     def say(name: str, reason: str) -> None:
         print(f"ranktide audit: FAIL: skipping {name}: {reason}", file=sys.stderr)
 
     chosen = select_snapshot(root, on_skip=say)
-    return [chosen.path], bool(chosen.skipped)
+    return [chosen.path], [{"snapshot": name, "reason": reason} for name, reason in chosen.skipped]
 
 
 def run_audit(root: Path, snapshot: str | None, every: bool, k: int, as_json: bool, plot: Path | None) -> int:
     """``ranktide audit``; returns the exit code (1 on a failed check, 2 on unreadable input)."""
     try:
-        dirs, failed = _targets(root, snapshot, every)
+        dirs, skipped = _targets(root, snapshot, every)
     except SnapshotError as exc:
         print(f"ranktide audit: error: {exc}", file=sys.stderr)
         # snapshots that exist but all fail their checksums fail the audit
         return 1 if isinstance(exc, NoValidSnapshot) else 2
-    results = []
+    results, failed = [], bool(skipped)
     for path in dirs:
         try:
             results.append(audit_snapshot(path, k))
@@ -218,7 +218,11 @@ def run_audit(root: Path, snapshot: str | None, every: bool, k: int, as_json: bo
         if not as_json:
             print("\n".join(_describe(results[-1])))
     if as_json:
-        print(json.dumps(results[0] if len(results) == 1 and not every else results, indent=2))
+        # the reading commands' style: one object; a single audit's keys, or every audit under 'audits'
+        if every:
+            print(json.dumps({"root": str(root), "audits": results}, indent=2))
+        elif results:
+            print(json.dumps({**results[0], "skipped": skipped}, indent=2))
     if plot is not None and results:
         print(f"plot: {plot_series(results, plot)}", file=sys.stderr)
     return 1 if failed else 0

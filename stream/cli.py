@@ -373,8 +373,10 @@ def build_parser() -> argparse.ArgumentParser:
                                    "bound and whether it holds, top-k overlap, Kendall tau on the top k, the largest "
                                    "relative errors and the residual drift. Exits 1 when a measured error exceeds "
                                    "the certified bound or a file fails its checksum.")
-    p.add_argument("root", type=Path, help="snapshot root folder")
-    p.add_argument("--snapshot", metavar="NAME", help="audit this snapshot (default: the newest)")
+    p.add_argument("root", type=Path, metavar="ROOT", help=_ROOT_HELP)
+    p.add_argument("--snapshot", metavar="NAME",
+                   help="audit this snapshot (default: the newest valid one; newer ones failing their "
+                        "checksums are named and fail the audit)")
     p.add_argument("--all", action="store_true", help="audit every snapshot in the root")
     p.add_argument("-k", type=int, default=100, help="size of the top set for overlap and Kendall tau (default 100)")
     p.add_argument("--json", action="store_true", help="print the results as JSON")

@@ -170,7 +170,14 @@ def test_audit_skips_a_damaged_newest_snapshot_but_fails(series) -> None:
     proc = _cli("audit", str(root), "--json")
     assert proc.returncode == 1  # a file failing its checksum fails the audit
     assert snaps[-1].name in proc.stderr and "sha256" in proc.stderr
-    assert json.loads(proc.stdout)["snapshot"] == snaps[-2].name  # and the newest valid one is audited
+    report = json.loads(proc.stdout)
+    assert report["snapshot"] == snaps[-2].name  # and the newest valid one is audited
+    assert report["skipped"] == [{"snapshot": snaps[-1].name, "reason": "scores.parquet fails its sha256 checksum"}]
+    assert report["ok"] is True
+    every = _cli("audit", str(root), "--all", "--json")
+    assert every.returncode == 1
+    audits = json.loads(every.stdout)["audits"]
+    assert [a["snapshot"] for a in audits] == [s.name for s in snaps[:-1]]
 
 
 def test_top_k_must_be_positive_and_every_reading_argument_has_help() -> None:
