@@ -42,6 +42,13 @@ from ranktide.stream.sources import Source, SourceChunk, open_source
 
 log = logging.getLogger("ranktide.service")
 
+#: Allocations between young-generation collections while the service runs
+#: (Python's default is 700).
+GC_YOUNG_THRESHOLD = 100_000
+#: Seconds a Kafka process that became the owner waits for the previous owner
+#: (on this host) to let go of the snapshot root's writer lock.
+ROOT_LOCK_WAIT = 60.0
+
 
 def _stamp(when: datetime) -> str:
     """The manifest's ``created_at`` text of a time (millisecond precision)."""
@@ -54,13 +61,6 @@ def _created(manifest: dict) -> float:
         return datetime.fromisoformat(manifest["created_at"]).timestamp()
     except (KeyError, TypeError, ValueError):
         return 0.0
-
-#: Allocations between young-generation collections while the service runs
-#: (Python's default is 700).
-GC_YOUNG_THRESHOLD = 100_000
-#: Seconds a Kafka process that became the owner waits for the previous owner
-#: (on this host) to let go of the snapshot root's writer lock.
-ROOT_LOCK_WAIT = 60.0
 
 
 class RejectsSink:
@@ -263,7 +263,10 @@ class Service:
         self.source_is_kafka = bootstrap is not None
         try:
             # before anything touches the root; a Kafka process locks it once it owns the graph
-            self._check_kafka_root() if bootstrap else self._lock_root()
+            if bootstrap:
+                self._check_kafka_root()
+            else:
+                self._lock_root()
         except RootLocked:
             raise
         except SnapshotError as exc:
