@@ -6,6 +6,10 @@ to a certified 1e-12, on the snapshot's own edge set, and reports
 * the measured normalised L1 and L-infinity errors of the stored scores;
 * the certified bound of the manifest, and whether the measured error
   respects it (it must: a measured error above the bound means a bug);
+* node by node, the measured error against the node's published
+  ``error_bound`` (every node of every profile; a node above its bound is a
+  failure naming the worst one), and the largest measured relative error
+  among the nodes the per-node contract certifies, against ``rtol``;
 * top-k overlap and Kendall's tau on the exact top k;
 * the largest relative errors among the exact top k;
 * the drift of the residual: the bound the manifest states against the
@@ -20,10 +24,14 @@ newer ones that fail their checksums are named and fail the audit too.
 from __future__ import annotations
 
 import json
+import math
 import sys
 from dataclasses import asdict, dataclass
 from pathlib import Path
 
+import numpy as np
+import pyarrow.compute as pc
+import pyarrow.parquet as pq
 
 from ranktide.solver import GLOBAL
 from ranktide.solver.metrics import (
@@ -64,6 +72,12 @@ class ProfileAudit:
     recomputed_bound: float
     residual_drift: float
     residual_drift_relative: float | None
+    nodes_within_bounds: bool | None = None
+    worst_node: str | None = None
+    worst_error: float | None = None
+    worst_error_bound: float | None = None
+    rtol: float | None = None
+    relative_error_certified: float | None = None
 
 
 def residual_drift(stated: float, recomputed: float) -> tuple[float, float | None]:
@@ -88,16 +102,19 @@ def audit_snapshot(path: Path, k: int = 100) -> dict:
     for name in eng.profiles:
         stored = eng.scores(name)
         exact = eng.exact_scores(name, tol=EXACT_TOLERANCE, warm=False)
-        stated = float(manifest["certified_bound"][name])
+        stated = manifest["certified_bound"][name]
+        stated = math.inf if stated is None else float(stated)
         k_row = eng.profile_index(name)
         recomputed = certified_bound(eng.P[k_row, :n], eng.R[k_row, :n])
         err = l1_error(stored, exact)
         drift, relative = residual_drift(stated, recomputed)
+        per_node = _per_node(path, manifest, ranker, name, stored, exact)
+        l1_ok = err <= stated * (1 + 1e-9) + EXACT_TOLERANCE
         profiles[name] = asdict(ProfileAudit(
             l1=err,
             linf=linf_error(stored, exact),
             certified_bound=stated,
-            within_bound=bool(err <= stated * (1 + 1e-9) + EXACT_TOLERANCE),
+            within_bound=bool(l1_ok and per_node.get("nodes_within_bounds") is not False),
             top_k_overlap=top_k_overlap(exact, stored, k),
             kendall_tau_top_k=kendall_tau_top_k(exact, stored, k),
             largest_relative_errors=[
@@ -107,6 +124,7 @@ def audit_snapshot(path: Path, k: int = 100) -> dict:
             recomputed_bound=recomputed,
             residual_drift=drift,
             residual_drift_relative=relative,
+            **per_node,
         ))
     return {
         "snapshot": path.name,
@@ -116,6 +134,45 @@ def audit_snapshot(path: Path, k: int = 100) -> dict:
         "k": k,
         "ok": all(p["within_bound"] for p in profiles.values()),
         "profiles": profiles,
+    }
+
+
+def _published_bounds(path: Path, manifest: dict, ranker, name: str) -> np.ndarray | None:
+    """The ``error_bound`` of every node of profile ``name`` (None for a format without them).
+
+    A personalization lists its non-zero scores only; the manifest's
+    ``unlisted_bound`` covers every node it leaves out.
+    """
+    table = pq.read_table(path / "scores.parquet")
+    if "error_bound" not in table.column_names:
+        return None
+    part = table.filter(pc.equal(table["profile"], name))
+    unlisted = manifest["profiles"][name].get("unlisted_bound")
+    bounds = np.full(len(ranker.ids), math.inf if unlisted is None else float(unlisted))
+    bounds[ranker.ids.intern(part["node"].combine_chunks())] = part["error_bound"].to_numpy()
+    return bounds
+
+
+def _per_node(path: Path, manifest: dict, ranker, name: str, stored: np.ndarray, exact: np.ndarray) -> dict:
+    """Every node's measured error against its published bound; relative error of the certified nodes."""
+    bounds = _published_bounds(path, manifest, ranker, name)
+    if bounds is None:
+        return {}
+    error = np.abs(stored - exact)
+    excess = error - (bounds * (1 + 1e-9) + EXACT_TOLERANCE)
+    worst = int(np.argmax(excess)) if error.size else 0
+    facts = manifest["profiles"][name]
+    threshold = facts.get("certified_threshold") or 0.0
+    certified = stored >= threshold if threshold > 0 else stored > 0
+    with np.errstate(divide="ignore", invalid="ignore"):
+        relative = np.where(exact[certified] > 0, error[certified] / exact[certified], 0.0)
+    return {
+        "nodes_within_bounds": bool(error.size == 0 or excess[worst] <= 0.0),
+        "worst_node": ranker.ids.name(worst) if error.size else None,
+        "worst_error": float(error[worst]) if error.size else None,
+        "worst_error_bound": float(bounds[worst]) if error.size else None,
+        "rtol": manifest.get("rtol"),
+        "relative_error_certified": float(relative.max(initial=0.0)),
     }
 
 
@@ -130,6 +187,12 @@ def _describe(result: dict) -> list[str]:
             f"  top-{result['k']} overlap {p['top_k_overlap']:.4f}   Kendall tau on top-{result['k']} "
             f"{p['kendall_tau_top_k']:.4f}   residual drift {_drift_text(p)}",
         ]
+        if p.get("nodes_within_bounds") is not None:
+            scope = "every node within its error_bound" if p["nodes_within_bounds"] else \
+                f"FAIL: node {p['worst_node']} off by {p['worst_error']:.3e}, its error_bound {p['worst_error_bound']:.3e}"
+            rtol = f" (rtol {p['rtol']:g})" if p.get("rtol") else ""
+            lines.append(f"  per node: {scope}; largest relative error of the certified nodes "
+                         f"{p['relative_error_certified']:.3e}{rtol}")
         worst = ", ".join(f"{e['node']} {e['relative_error']:.2e}" for e in p["largest_relative_errors"][:3])
         if worst:
             lines.append(f"  largest relative errors in the top {result['k']}: {worst}")

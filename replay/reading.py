@@ -132,19 +132,50 @@ def _age(created: str) -> str:
     return f"{seconds:.0f} seconds ago"
 
 
+def _targets_in_words(manifest: dict) -> str:
+    parts = []
+    if manifest.get("rtol"):
+        parts.append(f"contract: every score within {manifest['rtol']:.3g} relative")
+    if manifest.get("tolerance"):
+        parts.append(f"L1 tolerance {manifest['tolerance']:g}")
+    return "; ".join(parts)
+
+
+def _profile_in_words(manifest: dict, name: str, l1: float | None) -> str:
+    """One profile's certified figures against the targets."""
+    facts = manifest.get("profiles", {}).get(name, {})
+    parts = []
+    rtol, tolerance = manifest.get("rtol"), manifest.get("tolerance")
+    if "rtol_reached" in facts:
+        reached = facts["rtol_reached"]
+        top = facts.get("certified_top")
+        scope = "every node" if top is None else f"the {top} best nodes (the rest absolute)"
+        if reached is None:
+            parts.append(f"relative error not certified on {scope}")
+        else:
+            ok = "" if not rtol else (" (within rtol)" if reached <= rtol and (facts.get("absolute_reached") or 0)
+                                      <= rtol else " (ABOVE rtol)")
+            parts.append(f"certified relative error at most {reached:.3g} on {scope}{ok}")
+    if l1 is None:
+        parts.append("L1 error not certified")
+    else:
+        ok = "" if not tolerance else (" (within tolerance)" if l1 <= tolerance else " (ABOVE tolerance)")
+        parts.append(f"certified L1 error at most {l1:.3g}{ok}")
+    return "; ".join(parts)
+
+
 def describe(manifest: dict, path: Path) -> list[str]:
     """The manifest in words."""
     lines = [
         f"snapshot {path.name} (sequence {manifest['sequence']}), written {manifest['created_at']} "
         f"({_age(manifest['created_at'])})",
         f"graph: {manifest.get('nodes', '?'):,} nodes, {manifest.get('edges', '?'):,} edges; "
-        f"damping {manifest['damping']}, tolerance {manifest['tolerance']:g}",
+        f"damping {manifest['damping']}; {_targets_in_words(manifest)}",
         f"events: {manifest['events_applied']:,} applied ({manifest['events_noop']:,} no-ops), "
         f"{manifest['events_rejected']:,} rejected",
     ]
     for name, bound in manifest["certified_bound"].items():
-        ok = "within" if bound <= manifest["tolerance"] else "ABOVE"
-        lines.append(f"profile {name}: certified L1 error at most {bound:.3g} ({ok} tolerance)")
+        lines.append(f"profile {name}: {_profile_in_words(manifest, name, bound)}")
     pos = manifest.get("positions", {})
     for path, where in pos.get("files", {}).items():
         lines.append(f"source: file {path} up to byte {where.get('offset', 0):,} (line {where.get('line', 0):,})")
@@ -192,7 +223,8 @@ def snapshot_record(path: Path) -> dict:
 def _bounds_text(bounds: object) -> str:
     if not isinstance(bounds, dict):
         return "?"
-    return " ".join(f"{name}={b:.2g}" if isinstance(b, (int, float)) else f"{name}=?" for name, b in bounds.items())
+    # null: the L1 error is not certified (an rtol-only contract may leave it so)
+    return " ".join(f"{name}={b:.2g}" if isinstance(b, (int, float)) else f"{name}=n/a" for name, b in bounds.items())
 
 
 def _count_text(value: object) -> str:

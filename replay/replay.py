@@ -24,8 +24,13 @@ class ReplayOptions:
 
     Attributes
     ----------
-    damping, tolerance : float
-        Engine parameters (defaults 0.85 and 1e-6).
+    damping : float
+        Probability of following an edge (default 0.85).
+    rtol, tolerance : float or None
+        The settle targets (``solver.Engine``): per-node relative ``rtol``
+        (default 1e-3) and the optional normalised L1 ``tolerance`` (default off).
+    certified_top : int
+        ``K`` of the personalizations' contract (default 100).
     personalizations : dict
         Profile name -> seeds file (one node per line, optionally
         ``node,weight``), applied before the log's first event.
@@ -51,7 +56,9 @@ class ReplayOptions:
     """
 
     damping: float = 0.85
-    tolerance: float = 1e-6
+    rtol: float | None = 1e-3
+    tolerance: float | None = None
+    certified_top: int = 100
     personalizations: dict[str, Path] = field(default_factory=dict)
     micro_batch: int | None = None
     limits: Limits = field(default_factory=Limits)
@@ -290,7 +297,8 @@ class _Replay:
 
     def _start(self):
         if self.options.from_snapshot is None:
-            ranker = Ranker(damping=self.options.damping, tolerance=self.options.tolerance)
+            ranker = Ranker(damping=self.options.damping, rtol=self.options.rtol, tolerance=self.options.tolerance,
+                            certified_top=self.options.certified_top)
             seed_personalizations(ranker, self.options.personalizations)
             return ranker, Counters(), 0, 0, {}
         snap = load_snapshot(self.options.from_snapshot)

@@ -32,6 +32,8 @@ import numpy as np
 from . import kernels
 from .exact import solve
 from .graph import DynamicGraph
+from .bounds import CERTIFIED_TOP, Certificate, Weights, certify, global_upper, kth_largest, \
+    normalised_bounds, unnormalised_bounds
 from .metrics import certified_bound, top_k_indices
 
 GLOBAL = "global"
@@ -62,6 +64,26 @@ SEED_ROUNDING_SHARE = 1e-3
 #: Share of the residual budget that tiny residuals may hold while parked off the
 #: active lists (so that each settle scans only nodes that matter).
 PARK_SHARE = 0.25
+
+#: Default relative tolerance of the per-node contract: every published score within 0.1 %.
+RTOL = 1e-3
+
+#: Pushes of a per-node settle hand over to global sweeps once they have touched this
+#: share of the edges (a pushed edge costs about 30 times a swept one), and at least
+#: :data:`PUSH_EDGE_FLOOR` edges (on small graphs a sweep saves nothing).
+PUSH_EDGE_SHARE = 0.1
+PUSH_EDGE_FLOOR = 50_000
+
+#: Safety factor on the per-node thresholds: the running residual carries rounding
+#: (about 1e-12 relative), far below this margin.
+THRESHOLD_MARGIN = 0.99
+
+#: A personalization's error budget ``rtol / (1 + rtol)`` is split in four: the part
+#: relative to its own scores, the absolute part at hubs, the shift of its sum, slack.
+BUDGET_PARTS = 4.0
+
+#: Attempts to settle a personalization to its contract (each tightens the thresholds).
+CONTRACT_ATTEMPTS = 8
 
 
 @dataclass
@@ -106,9 +128,18 @@ class Engine:
     damping : float
         Probability ``d`` of following an edge (default 0.85, common practice
         since the original PageRank report).
-    tolerance : float
-        Target of :meth:`settle`: the certified bound on the normalised L1
-        error of every profile's scores.
+    rtol : float or None
+        The per-node contract (default 1e-3): every published global score
+        within relative ``rtol`` of the exact PageRank; for a personalization,
+        every node scoring at least its ``certified_top``-th best score within
+        relative ``rtol`` and the others within ``rtol`` times that score.
+        ``None`` turns it off (then ``tolerance`` must be set).
+    tolerance : float or None
+        Optional second target (default off): the certified bound on the
+        normalised L1 error of every profile's scores. With both set,
+        :meth:`settle` meets both.
+    certified_top : int
+        ``K`` of the personalizations' contract (default 100).
     node_capacity, edge_capacity : int
         Initial array sizes; they grow as needed.
     """
@@ -116,17 +147,28 @@ class Engine:
     def __init__(
         self,
         damping: float = 0.85,
-        tolerance: float = 1e-6,
+        *,
+        rtol: float | None = RTOL,
+        tolerance: float | None = None,
+        certified_top: int = CERTIFIED_TOP,
         node_capacity: int = 1024,
         edge_capacity: int = 4096,
     ) -> None:
         if not 0.0 < damping < 1.0:
             raise ValueError(f"damping must lie strictly between 0 and 1, got {damping}")
-        if not tolerance > 0.0:
+        if rtol is None and tolerance is None:
+            raise ValueError("set rtol, tolerance or both: settle needs a target")
+        if rtol is not None and not 0.0 < rtol < 1.0:
+            raise ValueError(f"rtol must lie strictly between 0 and 1, got {rtol}")
+        if tolerance is not None and not tolerance > 0.0:
             raise ValueError(f"tolerance must be > 0, got {tolerance}")
+        if int(certified_top) < 1:
+            raise ValueError(f"certified_top must be at least 1, got {certified_top}")
         self.damping = float(damping)
         self.teleport = 1.0 - self.damping
-        self.tolerance = float(tolerance)
+        self.rtol = None if rtol is None else float(rtol)
+        self.tolerance = None if tolerance is None else float(tolerance)
+        self.certified_top = int(certified_top)
         self.graph = DynamicGraph(node_capacity, edge_capacity)
         self.profiles: list[str] = [GLOBAL]
         cap = self.graph.node_capacity
@@ -137,6 +179,8 @@ class Engine:
         self._in_active = np.zeros((1, cap), dtype=np.bool_)
         self._n_active = np.zeros(1, dtype=np.int64)
         self._parked = np.zeros(1)  # residual mass of nodes parked off the active lists
+        self._parked_max = np.zeros(1)  # largest |r| parked since the last full listing
+        self._weights: list[Weights] = [Weights(0.0, self._global_threshold())]
         self._seed_error = np.zeros(1)  # rounding bound of seed updates to the residual, per profile
         self._queue = np.zeros(cap, dtype=np.int32)
         self._in_queue = np.zeros(cap, dtype=np.bool_)
@@ -169,7 +213,9 @@ class Engine:
         self._in_active = np.vstack([self._in_active, np.zeros(cap, dtype=np.bool_)])
         self._n_active = np.append(self._n_active, 0)
         self._parked = np.append(self._parked, 0.0)
+        self._parked_max = np.append(self._parked_max, 0.0)
         self._seed_error = np.append(self._seed_error, 0.0)
+        self._weights.append(Weights())
         return len(self.profiles) - 1
 
     def ensure_nodes(self, n_nodes: int, n_new_edges: int = 0) -> None:
@@ -250,15 +296,22 @@ class Engine:
         )
 
     def settle(self, tolerance: float | None = None) -> SettleStats:
-        """Push every profile until its certified bound is at most the tolerance."""
+        """Push every profile until it meets the contract: ``rtol`` and, if set, the L1 ``tolerance``.
+
+        ``tolerance`` given here replaces the L1 target of this call.
+        """
         tol = self.tolerance if tolerance is None else float(tolerance)
         total = SettleStats()
         n = self.n_nodes
         for k in range(len(self.profiles)):
-            if self._seed_error[k] > 0.0 and \
-                    self._seed_error[k] > SEED_ROUNDING_SHARE * tol * float(self.S[k, :n].sum()):
+            if self._seed_error[k] > 0.0 and self._seed_error[k] > SEED_ROUNDING_SHARE * self._smallest_budget(k, tol):
                 # seed updates may have rounded the residual beyond a sliver of the budget
                 self._recompute_profile_residual(k)
+            if self.rtol is not None:
+                total.add(self._settle_relative(k))
+            if tol is None:
+                self._compact(k, None, 0.0)
+                continue
             stats, s_p = self._settle_profile(k, tol)
             total.add(stats)
             # (the running sum s_p is exact enough to rule the case out when it is not small)
@@ -268,6 +321,143 @@ class Engine:
                 self._recompute_profile_residual(k)
                 total.add(self._settle_profile(k, tol)[0])
         return total
+
+    def _smallest_budget(self, k: int, tol: float | None) -> float:
+        """The smallest residual that matters to profile ``k``'s targets (for the rounding guard)."""
+        n = self.n_nodes
+        budgets = []
+        if tol is not None:
+            budgets.append(tol * float(self.S[k, :n].sum()))
+        if self.rtol is not None:
+            budgets.append(self._weights[k].beta)
+        return min(budgets)
+
+    # ------------------------------------------------------------ per-node contract
+    def _global_threshold(self) -> float:
+        """Largest ``max |r_g|`` at which every global score is within relative ``rtol``.
+
+        Per-node lemma (``solver.bounds``): the published score's certified relative
+        error is ``2 rho / (1 - 2 rho)``; at most ``rtol / (1 + rtol)`` it certifies
+        ``|published - exact| <= rtol * exact``.
+        """
+        if self.rtol is None:
+            return 1.0
+        return THRESHOLD_MARGIN * self.rtol / (2.0 + 4.0 * self.rtol)
+
+    def _settle_relative(self, k: int) -> SettleStats:
+        """Settle profile ``k`` to the per-node contract."""
+        if k == 0:
+            return self._push_and_sweep(k, self._weights[0])
+        stats = SettleStats()
+        n = self.n_nodes
+        if not self.S[k, :n].any():
+            return stats
+        weights = None
+        for _ in range(CONTRACT_ATTEMPTS):
+            weights = self._personal_weights(k, weights)
+            self._weights[k] = weights
+            stats.add(self._push_and_sweep(k, weights))
+            if self.certificate(self.profiles[k]).meets(self.rtol):
+                break
+        return stats
+
+    def _personal_weights(self, k: int, previous: Weights | None) -> Weights:
+        """Thresholds ``alpha s + beta`` under which personalization ``k`` meets ``rtol``.
+
+        With ``c = max |r| / (alpha s + beta) <= 1`` the lemma bounds
+        ``|x_k(v) - p_k(v)|`` by ``alpha x_k(v) + beta x_g(v)``: ``alpha`` takes a
+        part of the relative budget; ``beta`` is sized so that even at the
+        largest global score the absolute part stays within that share of the
+        ``K``-th best score. A retry (``previous``) at least halves both.
+        """
+        n = self.n_nodes
+        part = self.rtol / (1.0 + self.rtol) / BUDGET_PARTS
+        p = self.P[k, :n]
+        positive = p[p > 0.0]
+        if positive.size:
+            kth = kth_largest(positive, self.certified_top)
+        else:
+            seeds = self.S[k, :n]
+            kth = self.teleport * kth_largest(seeds[seeds > 0.0], self.certified_top)
+        xg_max = float(global_upper(self.P[0, :n], self.R[0, :n]).max(initial=0.0))
+        alpha = part * THRESHOLD_MARGIN
+        beta = alpha * (1.0 - part) * kth / xg_max if xg_max > 0.0 else alpha * kth
+        if previous is not None:
+            alpha = min(alpha, 0.5 * previous.alpha)
+            beta = min(beta, 0.5 * previous.beta)
+        return Weights(alpha, max(beta, 1e-300))
+
+    def _push_and_sweep(self, k: int, weights: Weights) -> SettleStats:
+        """Forward push to the thresholds ``weights``; global sweeps where pushes would cost more."""
+        g = self.graph.arrays
+        n = self.n_nodes
+        stats = np.zeros(5, dtype=np.int64)
+        if self._parked_max[k] > weights.beta:
+            # thresholds fell below residuals parked earlier: list every node again
+            kernels.relist_active(k, self.R, n, self._active, self._n_active, self._in_active, self._parked)
+            self._parked_max[k] = 0.0
+        edge_limit = max(PUSH_EDGE_SHARE * self.n_edges, PUSH_EDGE_FLOOR)
+        for _ in range(1_000):
+            handover = kernels.push_to_thresholds(
+                k, n, self.n_edges, g.head, g.out_weight, g.out_degree, g.dst, g.weight, g.next,
+                self.P, self.R, self.S, weights.alpha, weights.beta, self.teleport, self.damping,
+                self._active, self._n_active, self._in_active, self._parked,
+                self._queue, self._in_queue, edge_limit, stats,
+            )
+            if not handover or not self._sweep_to_thresholds(k, weights, edge_limit, stats):
+                break
+        return SettleStats(*(int(x) for x in stats))
+
+    def _sweep_to_thresholds(self, k: int, weights: Weights, edge_limit: float, stats: np.ndarray) -> bool:
+        """Global sweeps until pushes can finish; returns True when pushes should go on.
+
+        Sweeps shrink the residual everywhere but slowly at hubs, where it
+        keeps flowing in; so they stop once the nodes still above their
+        thresholds carry at most ``edge_limit`` out-edges, and pushes finish.
+        """
+        n = self.n_nodes
+        best = np.inf
+        stalled = 0
+        while True:
+            self._sweep(k)
+            stats[2] += 1
+            stats[3] += self.n_edges
+            worst, frontier = kernels.over_thresholds(k, n, self.R, self.S, weights.alpha, weights.beta,
+                                                      self.graph.arrays.out_degree)
+            if worst <= 1.0 or frontier <= edge_limit:
+                break
+            stalled = stalled + 1 if worst >= best else 0
+            best = min(best, worst)
+            if stalled >= 50:
+                break  # rounding floor: the certificate reports what was reached
+        kernels.relist_active(k, self.R, n, self._active, self._n_active, self._in_active, self._parked)
+        self._parked_max[k] = 0.0
+        return worst > 1.0 and stalled < 50
+
+    def certificate(self, profile: str = GLOBAL) -> Certificate:
+        """Certified per-node bounds of ``profile``'s published scores, and the contract they meet.
+
+        One pass over the nodes (``solver.bounds``): call it when publishing,
+        not per event.
+        """
+        k = self.profile_index(profile)
+        n = self.n_nodes
+        p, r, s = self.P[k, :n], self.R[k, :n], self.S[k, :n]
+        top = None if k == 0 else self.certified_top
+        if k > 0 and not s.any():
+            zeros = np.zeros(n)
+            return certify(zeros, zeros, 0.0, top)
+        l1 = certified_bound(p, r)
+        xbar_g = global_upper(self.P[0, :n], self.R[0, :n])
+        err = unnormalised_bounds(p, r, s, xbar_g, None if k == 0 else self._weights[k])
+        bounds = normalised_bounds(p, r, err, l1)
+        total = float(p.sum())
+        scores = p / total if total > 0.0 else np.zeros(n)
+        return certify(scores, bounds, l1, top)
+
+    def error_bounds(self, profile: str = GLOBAL) -> np.ndarray:
+        """Certified bound on ``|published - exact|`` for every node of ``profile``."""
+        return self.certificate(profile).bounds
 
     def _settle_profile(self, k: int, tol: float) -> tuple[SettleStats, float]:
         """Settle profile ``k``; return the work done and the sum of its estimate."""
@@ -304,6 +494,7 @@ class Engine:
             if stalled >= 50:
                 break  # rounding floor reached: the bound reported is what it is
         kernels.relist_active(k, self.R, n, self._active, self._n_active, self._in_active, self._parked)
+        self._parked_max[k] = 0.0
         return s_p
 
     def _sweep(self, k: int) -> tuple[float, float, float]:
@@ -315,12 +506,21 @@ class Engine:
                               int(g.counters[0]), self.graph.unit_weights)
         return kernels.profile_sums(k, self.P, self.R, n)
 
-    def _compact(self, k: int, tol: float, s_p: float) -> None:
-        """Shorten the active list; park tiny residuals within a share of the error budget."""
-        budget = PARK_SHARE * tol * max(s_p, 0.0) / (2.0 + tol)
-        each = kernels.park_threshold(k, self.R, self._active, self._n_active, budget - self._parked[k])
-        kernels.compact_active(k, self.R, self._active, self._n_active, self._in_active, self._parked,
-                               budget, each)
+    def _compact(self, k: int, tol: float | None, s_p: float) -> None:
+        """Shorten the active list: park residuals that no target needs pushed.
+
+        Under the per-node contract every residual within its threshold may be
+        parked; under an L1 target, tiny ones within a share of the error budget.
+        """
+        each, budget = np.inf, np.inf
+        if tol is not None:
+            budget = PARK_SHARE * tol * max(s_p, 0.0) / (2.0 + tol)
+            each = kernels.park_threshold(k, self.R, self._active, self._n_active, budget - self._parked[k])
+        if self.rtol is not None:
+            each = min(each, self._weights[k].beta)
+        largest = kernels.compact_active(k, self.R, self._active, self._n_active, self._in_active, self._parked,
+                                         budget, each)
+        self._parked_max[k] = max(self._parked_max[k], largest)
 
     # ------------------------------------------------------------ exactness
     def recompute_residual(self) -> float:
@@ -405,6 +605,7 @@ class Engine:
     def _reset_active(self, k: int) -> None:
         n = self.n_nodes
         self._parked[k] = 0.0
+        self._parked_max[k] = 0.0
         self._in_active[k, :] = False
         nz = np.flatnonzero(self.R[k, :n]).astype(np.int32)
         self._active[k, : nz.size] = nz

@@ -617,9 +617,11 @@ def compact_active(k, R, active, n_active, in_active, parked, park_budget, park_
     Nodes with a zero residual leave it; nodes with ``|r| <= park_each`` are
     parked (their residual moves into ``parked[k]``) while the parked total
     stays within ``park_budget``. Scans and pushes then skip them until an
-    update touches them again (see :func:`_mark`).
+    update touches them again (see :func:`_mark`). Returns the largest
+    residual parked.
     """
     kept = 0
+    largest = 0.0
     for i in range(n_active[k]):
         u = active[k, i]
         r = abs(R[k, u])
@@ -628,7 +630,127 @@ def compact_active(k, R, active, n_active, in_active, parked, park_budget, park_
         elif r <= park_each and parked[k] + r <= park_budget:
             in_active[k, u] = False
             parked[k] += r
+            largest = max(largest, r)
         else:
             active[k, kept] = u
             kept += 1
     n_active[k] = kept
+    return largest
+
+
+# ---------------------------------------------------------------- per-node contract
+
+
+@njit(cache=True, inline="always")
+def _threshold(S, k, u, alpha, beta):
+    return alpha * S[k, u] + beta
+
+
+@njit(cache=True, nogil=True)
+def push_to_thresholds(
+    k, n, m,
+    head, out_weight, out_degree, e_dst, e_w, e_next,
+    P, R, S, alpha, beta, a, d, active, n_active, in_active, parked, queue, in_queue, edge_limit, stats,
+):
+    """Forward push, first in first out, until every active ``|r(u)| <= alpha s(u) + beta``.
+
+    With constant thresholds (``alpha s + beta``; ``s = 1`` for the global
+    profile) this is the plain forward push of [1]; its work is local and,
+    for the global profile, does not grow with the graph. It keeps
+    ``max_u |r(u)| / w(u) <= 1``, which the per-node lemma of
+    :mod:`solver.bounds` turns into a bound on every node.
+
+    Forward push alone has bad worst cases on directed graphs (a multiplicative
+    guarantee can need nearly linear time per update: Jayaram et al., ICALP
+    2024): once pushes have touched ``edge_limit`` edges, or the nodes due at
+    the start carry more than that many out-edges, the kernel stops and
+    returns 1, and the caller continues with global sweeps.
+
+    Returns 0 when every active node meets its threshold, 1 to hand over to
+    sweeps. ``stats`` accumulates [0] pushes and [1] edges touched.
+    """
+    cap = queue.shape[0]
+    qt = 0
+    frontier = 0
+    for i in range(n_active[k]):
+        u = active[k, i]
+        if abs(R[k, u]) > _threshold(S, k, u, alpha, beta) and not in_queue[u]:
+            in_queue[u] = True
+            queue[qt] = u
+            qt += 1
+            frontier += out_degree[u]
+    pending = qt
+    if qt == cap:
+        qt = 0
+    qh = 0
+    touched = 0
+    handover = frontier > edge_limit
+    while pending > 0 and not handover:
+        u = queue[qh]
+        qh += 1
+        if qh == cap:
+            qh = 0
+        pending -= 1
+        in_queue[u] = False
+        ru = R[k, u]
+        if abs(ru) <= _threshold(S, k, u, alpha, beta):
+            continue
+        P[k, u] += a * ru
+        R[k, u] = 0.0
+        stats[0] += 1
+        W = out_weight[u]
+        if W <= 0.0:
+            continue
+        scale = d * ru / W
+        e = head[u]
+        while e >= 0:
+            v = e_dst[e]
+            _mark(k, v, R, active, n_active, in_active, parked)
+            after = R[k, v] + scale * e_w[e]
+            R[k, v] = after
+            if not in_queue[v] and abs(after) > _threshold(S, k, v, alpha, beta):
+                in_queue[v] = True
+                queue[qt] = v
+                qt += 1
+                if qt == cap:
+                    qt = 0
+                pending += 1
+            e = e_next[e]
+        touched += out_degree[u]
+        if touched > edge_limit:
+            handover = True
+    stats[1] += touched
+    while pending > 0:
+        in_queue[queue[qh]] = False
+        qh += 1
+        if qh == cap:
+            qh = 0
+        pending -= 1
+    return 1 if handover else 0
+
+
+@njit(cache=True, nogil=True)
+def over_thresholds(k, n, R, S, alpha, beta, out_degree):
+    """``(max_u |r(u)| / w(u), out-edges of the nodes above their threshold)`` over all nodes."""
+    worst = 0.0
+    frontier = 0
+    for u in range(n):
+        w = _threshold(S, k, u, alpha, beta)
+        ratio = abs(R[k, u]) / w
+        if ratio > worst:
+            worst = ratio
+        if ratio > 1.0:
+            frontier += out_degree[u]
+    return worst, frontier
+
+
+@njit(cache=True, nogil=True)
+def largest_ratio(k, R, S, alpha, beta, active, n_active):
+    """``max |r(u)| / w(u)`` over the active list."""
+    worst = 0.0
+    for i in range(n_active[k]):
+        u = active[k, i]
+        ratio = abs(R[k, u]) / _threshold(S, k, u, alpha, beta)
+        if ratio > worst:
+            worst = ratio
+    return worst

@@ -20,7 +20,8 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from .engine import GLOBAL, Engine, SettleStats
+from .bounds import CERTIFIED_TOP
+from .engine import GLOBAL, RTOL, Engine, SettleStats
 from .ids import NodeIds
 from .kernels import OP_DELETE, OP_INSERT, OP_SEED
 
@@ -103,12 +104,15 @@ class Ranker:
 
     Parameters
     ----------
-    damping, tolerance : float
-        As for :class:`~solver.engine.Engine`.
+    damping, rtol, tolerance, certified_top
+        As for :class:`~solver.engine.Engine`: by default every published score
+        is certified within relative ``rtol`` (1e-3); ``tolerance`` adds an L1 target.
     """
 
-    def __init__(self, damping: float = 0.85, tolerance: float = 1e-6, **capacity: int) -> None:
-        self.engine = Engine(damping=damping, tolerance=tolerance, **capacity)
+    def __init__(self, damping: float = 0.85, *, rtol: float | None = RTOL, tolerance: float | None = None,
+                 certified_top: int = CERTIFIED_TOP, **capacity: int) -> None:
+        self.engine = Engine(damping=damping, rtol=rtol, tolerance=tolerance, certified_top=certified_top,
+                             **capacity)
         self.ids = NodeIds()
 
     @property

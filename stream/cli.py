@@ -46,6 +46,33 @@ def _positive_float(text: str) -> float:
     return value
 
 
+def _non_negative_float(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
+    if not (value >= 0 and math.isfinite(value)):
+        raise argparse.ArgumentTypeError(f"must be a finite number >= 0, got {text}")
+    return value
+
+
+def _rtol(text: str) -> float:
+    value = _non_negative_float(text)
+    if value >= 1:
+        raise argparse.ArgumentTypeError(f"must lie in [0, 1) (0: off), got {text}")
+    return value
+
+
+def _positive_int(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"must be at least 1, got {text}")
+    return value
+
+
 def _damping(text: str) -> float:
     value = float(text)
     if not 0 < value < 1:
@@ -63,10 +90,27 @@ def _personalization(text: str) -> tuple[str, Path]:
 
 
 def add_engine_options(p: argparse.ArgumentParser) -> None:
-    p.add_argument("--tolerance", type=_positive_float, default=None,
-                   help="certified bound on the normalised L1 error of every profile (default 1e-6)")
+    p.add_argument("--rtol", type=_rtol, default=None,
+                   help="per-node contract: every published score within this relative error of the exact "
+                        "PageRank (default 0.001, i.e. 0.1 %%; 0 turns it off when --tolerance is set)")
+    p.add_argument("--tolerance", type=_non_negative_float, default=None,
+                   help="optional second target: certified bound on the normalised L1 error of every "
+                        "profile's whole vector (default: off)")
+    p.add_argument("--certified-top", type=_positive_int, default=None, metavar="K",
+                   help="a personalization certifies its K best nodes to --rtol and the rest to --rtol "
+                        "times the K-th score (default 100)")
     p.add_argument("--damping", type=_damping, default=None,
                    help="probability of following an edge rather than teleporting (default 0.85)")
+
+
+def _targets(args: argparse.Namespace) -> dict | None:
+    """``rtol``, ``tolerance`` and ``certified_top`` of replay (None and a message when both are off)."""
+    rtol = 1e-3 if args.rtol is None else (args.rtol or None)
+    tolerance = args.tolerance or None
+    if rtol is None and tolerance is None:
+        print("ranktide replay: error: --rtol 0 needs --tolerance: settling needs a target", file=sys.stderr)
+        return None
+    return {"rtol": rtol, "tolerance": tolerance, "certified_top": args.certified_top or 100}
 
 
 def _cmd_replay(args: argparse.Namespace) -> int:
@@ -74,10 +118,13 @@ def _cmd_replay(args: argparse.Namespace) -> int:
     from ranktide.replay.replay import ReplayOptions, replay_log
     from ranktide.stream.snapshots import SnapshotError
 
-    damping, tolerance = args.damping, args.tolerance
-    if args.from_snapshot is not None and (damping is not None or tolerance is not None):
-        print("ranktide replay: error: --from keeps the snapshot's damping and tolerance; "
-              "drop --damping/--tolerance", file=sys.stderr)
+    given = [args.damping, args.rtol, args.tolerance, args.certified_top]
+    if args.from_snapshot is not None and any(x is not None for x in given):
+        print("ranktide replay: error: --from keeps the snapshot's damping and targets; "
+              "drop --damping/--rtol/--tolerance/--certified-top", file=sys.stderr)
+        return 2
+    targets = _targets(args)
+    if targets is None:
         return 2
     try:
         start = None if args.from_snapshot is None else _resolve_from(args.from_snapshot)
@@ -85,8 +132,8 @@ def _cmd_replay(args: argparse.Namespace) -> int:
         print(f"ranktide replay: error: {exc}", file=sys.stderr)
         return 2
     options = ReplayOptions(
-        damping=0.85 if damping is None else damping,
-        tolerance=1e-6 if tolerance is None else tolerance,
+        damping=0.85 if args.damping is None else args.damping,
+        **targets,
         personalizations=dict(args.personalization or []),
         micro_batch=args.micro_batch,
         progress=not args.quiet and sys.stderr.isatty(),
@@ -134,7 +181,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
 
     overrides = {
         "source": args.source, "out": args.out, "group": args.group, "owner_topic": args.owner_topic,
-        "tolerance": args.tolerance,
+        "tolerance": args.tolerance, "rtol": args.rtol, "certified_top": args.certified_top,
         "damping": args.damping, "snapshot_interval": args.snapshot_interval,
         "keep_snapshots": args.keep_snapshots, "micro_batch": args.micro_batch,
         "rejects": f"kafka:{args.rejects_topic}" if args.rejects_topic else (f"file:{args.rejects}" if args.rejects else None),

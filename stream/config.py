@@ -5,7 +5,7 @@ A configuration file looks like::
     source = "kafka://broker1:9092,broker2:9092/edges"
     out = "/var/lib/ranktide"
     group = "ranktide"
-    tolerance = 1e-6
+    rtol = 1e-3
     snapshot_interval = 60
 
     [kafka]                      # any librdkafka property, passed through
@@ -14,7 +14,7 @@ A configuration file looks like::
     "sasl.username" = "ranker"
     "sasl.password" = "..."      # never logged nor written to snapshots
 
-Environment variables override the file: ``RANKTIDE_TOLERANCE=1e-7``,
+Environment variables override the file: ``RANKTIDE_RTOL=1e-4``,
 ``RANKTIDE_SNAPSHOT_INTERVAL=30``; ``RANKTIDE_KAFKA_SASL_PASSWORD=...`` sets
 the librdkafka property ``sasl.password`` (underscores become dots).
 Command-line options override both.
@@ -52,8 +52,17 @@ class ServiceConfig:
         processes (default ``GROUP.owner``, created when missing; option
         ``--owner-topic``, variable ``RANKTIDE_OWNER_TOPIC``). Its consumer
         group is always ``GROUP.owner``.
-    tolerance, damping : float
-        Engine parameters.
+    rtol : float
+        The per-node contract: every published score within relative ``rtol``
+        of the exact one (default 1e-3; 0 turns it off, then ``tolerance`` must be set).
+    tolerance : float
+        Optional second target: the certified normalised L1 error of every
+        profile (default 0: off).
+    certified_top : int
+        ``K``: a personalization certifies its K best nodes to ``rtol`` relative,
+        the rest to ``rtol`` times the K-th score (default 100).
+    damping : float
+        Probability of following an edge (default 0.85).
     snapshot_interval : float
         Seconds between snapshots (offsets are committed with each one).
     snapshot_events : int
@@ -97,7 +106,9 @@ class ServiceConfig:
     out: str = "ranktide-out"
     group: str = "ranktide"
     owner_topic: str = ""
-    tolerance: float = 1e-6
+    rtol: float = 1e-3
+    tolerance: float = 0.0
+    certified_top: int = 100
     damping: float = 0.85
     snapshot_interval: float = 60.0
     snapshot_events: int = 0
@@ -125,8 +136,14 @@ class ServiceConfig:
             raise ConfigError(f"source {self.source!r}: expected kafka://HOST:PORT/TOPIC or file:PATH")
         if not 0 < self.damping < 1:
             raise ConfigError(f"damping must lie strictly between 0 and 1, got {self.damping}")
-        if not self.tolerance > 0:
-            raise ConfigError(f"tolerance must be > 0, got {self.tolerance}")
+        if not 0 <= self.rtol < 1:
+            raise ConfigError(f"rtol must lie in [0, 1) (0: off), got {self.rtol}")
+        if not self.tolerance >= 0:
+            raise ConfigError(f"tolerance must be >= 0 (0: off), got {self.tolerance}")
+        if self.rtol == 0 and self.tolerance == 0:
+            raise ConfigError("rtol and tolerance are both off: set at least one")
+        if self.certified_top < 1:
+            raise ConfigError(f"certified_top must be at least 1, got {self.certified_top}")
         if not self.snapshot_interval > 0:
             raise ConfigError(f"snapshot_interval must be > 0 seconds, got {self.snapshot_interval}")
         if self.keep_snapshots < 1:
@@ -134,6 +151,11 @@ class ServiceConfig:
         if self.log_format not in ("text", "json"):
             raise ConfigError(f"log_format must be text or json, got {self.log_format!r}")
         return self
+
+    def targets(self) -> dict:
+        """The engine's settle targets (``None`` where a setting is 0: off)."""
+        return {"rtol": self.rtol or None, "tolerance": self.tolerance or None,
+                "certified_top": self.certified_top}
 
     def redacted(self) -> dict:
         """The settings with secret values replaced, for logs."""

@@ -200,7 +200,7 @@ class Service:
         """Load the newest good snapshot (or start empty); return its source positions."""
         snap = load_latest(self.out)
         if snap is None:
-            self.ranker = Ranker(damping=self.cfg.damping, tolerance=self.cfg.tolerance)
+            self.ranker = Ranker(damping=self.cfg.damping, **self.cfg.targets())
             from ranktide.replay.replay import seed_personalizations
 
             seed_personalizations(self.ranker, {k: Path(v) for k, v in self.cfg.personalizations.items()})

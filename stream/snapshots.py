@@ -3,10 +3,15 @@
 Layout (design notes, section 6)::
 
     ROOT/snap-00000007/
-        scores.parquet    node, profile, score (sums to 1 per profile)
+        scores.parquet    node, profile, score (sums to 1 per profile), error_bound
         edges.parquet     src, dst, weight
         seeds.parquet     profile, node, weight (teleport weights of personalizations)
-        manifest.json     format, sequence, damping, tolerance, certified_bound, ...
+        manifest.json     format, sequence, damping, rtol, tolerance, certified_bound, ...
+
+``error_bound`` is a certified bound on ``|score - exact score|`` of that node
+(the per-node contract, ``solver.bounds``). A personalization lists only the
+nodes with a non-zero score; every node it leaves out has an exact score of at
+most the profile's ``unlisted_bound`` in the manifest.
 
 A snapshot is written into ``ROOT/.snap-00000007.partial``, every file and the
 folder are fsynced, and only then is the folder renamed to its final name (an
@@ -37,9 +42,12 @@ import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
 from ranktide.solver import GLOBAL, Ranker
+from ranktide.solver.bounds import Certificate
 from ranktide.solver.ids import NodeIds
 
-FORMAT = 1
+FORMAT = 2
+#: Formats this version reads (1 had no ``error_bound`` column and no per-node facts).
+READABLE_FORMATS = (1, 2)
 _NAME = re.compile(r"^snap-(\d{8})$")
 log = logging.getLogger("ranktide.snapshots")
 
@@ -135,7 +143,7 @@ def _by_rank(ids: np.ndarray, ranks: np.ndarray) -> np.ndarray:
     return ids[np.argsort(ranks[ids], kind="stable")]
 
 
-def _tables(ranker: Ranker) -> dict[str, pa.Table]:
+def _tables(ranker: Ranker, certificates: dict[str, Certificate]) -> dict[str, pa.Table]:
     """The snapshot's tables, each sorted by name so that equal states give equal files.
 
     Rows are ordered by integer name ranks (one sort of the node ids) instead
@@ -148,13 +156,15 @@ def _tables(ranker: Ranker) -> dict[str, pa.Table]:
     n = eng.n_nodes
     score_parts, seed_parts = [], []
     for name in sorted(eng.profiles):
-        sc = eng.scores(name)
+        cert = certificates[name]
+        sc = cert.scores
         keep = np.arange(n) if name == GLOBAL else np.flatnonzero(sc)
         keep = _by_rank(keep, ranks)
         score_parts.append(pa.table({
             "node": names.take(pa.array(keep)),
             "profile": pa.array(np.full(keep.size, name, dtype=object), pa.string()),
             "score": pa.array(sc[keep], pa.float64()),
+            "error_bound": pa.array(cert.bounds[keep], pa.float64()),
         }))
         if name != GLOBAL:
             s = eng.teleport_vector(name)
@@ -177,6 +187,24 @@ def _tables(ranker: Ranker) -> dict[str, pa.Table]:
         "scores.parquet": pa.concat_tables(score_parts),
         "edges.parquet": edges,
         "seeds.parquet": pa.concat_tables(seed_parts) if seed_parts else empty_seeds,
+    }
+
+
+def _finite(x: float) -> float | None:
+    """JSON has no infinity: an uncertified figure is written as null."""
+    return float(x) if np.isfinite(x) else None
+
+
+def _contract_facts(cert: Certificate, is_global: bool) -> dict:
+    """The per-node contract a profile's published scores meet (manifest ``profiles``)."""
+    unlisted = cert.bounds[cert.scores == 0.0]
+    return {
+        "rtol_reached": _finite(cert.rtol_reached),
+        "absolute_reached": _finite(cert.absolute_reached),
+        "l1_bound": _finite(cert.l1_bound),
+        "certified_top": None if is_global else cert.certified_top,
+        "certified_threshold": cert.threshold,
+        "unlisted_bound": 0.0 if is_global else _finite(float(unlisted.max(initial=0.0))),
     }
 
 
@@ -210,11 +238,12 @@ def write_snapshot(
     eng = ranker.engine
     eng.recompute_residual()
     eng.settle()
+    certificates = {name: eng.certificate(name) for name in eng.profiles}
     try:
         _clear_partials(root)
         partial.mkdir()
         files = {}
-        for fname, table in _tables(ranker).items():
+        for fname, table in _tables(ranker, certificates).items():
             pq.write_table(table, partial / fname, compression="zstd")
             _fsync_file(partial / fname)
             files[fname] = _sha256(partial / fname)
@@ -222,15 +251,19 @@ def write_snapshot(
             "format": FORMAT,
             "sequence": seq,
             "damping": eng.damping,
+            "rtol": eng.rtol,
             "tolerance": eng.tolerance,
-            "certified_bound": {name: eng.certified_bound(name) for name in eng.profiles},
+            "certified_top": eng.certified_top,
+            "certified_bound": {name: _finite(c.l1_bound) for name, c in certificates.items()},
             **counters.as_dict(),
             "positions": positions,
             "created_at": (created_at or datetime.now(timezone.utc)).isoformat(timespec="milliseconds"),
             "nodes": eng.n_nodes,
             "edges": eng.n_edges,
             "profiles": {
-                name: {"estimate_sum": float(eng.P[k, : eng.n_nodes].sum())} for k, name in enumerate(eng.profiles)
+                name: {"estimate_sum": float(eng.P[k, : eng.n_nodes].sum()),
+                       **_contract_facts(certificates[name], k == 0)}
+                for k, name in enumerate(eng.profiles)
             },
             "files": files,
         }
@@ -288,8 +321,9 @@ def problem(path: Path, manifest: dict) -> str | None:
     sha256, so a truncated or bit-flipped file is caught before any reader
     parses it.
     """
-    if manifest.get("format") != FORMAT:
-        return f"snapshot format {manifest.get('format')!r}, this version reads {FORMAT}"
+    if manifest.get("format") not in READABLE_FORMATS:
+        return (f"snapshot format {manifest.get('format')!r}, "
+                f"this version reads {', '.join(map(str, READABLE_FORMATS))}")
     missing = [key for key in REQUIRED_KEYS if key not in manifest]
     if missing:
         return f"manifest.json lacks {', '.join(missing)}"
@@ -413,12 +447,23 @@ def _intern_column(ids: NodeIds, column: pa.ChunkedArray) -> np.ndarray:
     return np.concatenate(parts) if parts else np.zeros(0, np.int32)
 
 
+def _targets(manifest: dict) -> dict:
+    """The settle targets a snapshot was written under (format 1 had the L1 tolerance only)."""
+    if manifest.get("format") == 1:
+        return {"rtol": None, "tolerance": manifest["tolerance"]}
+    from ranktide.solver.bounds import CERTIFIED_TOP
+
+    return {"rtol": manifest.get("rtol"), "tolerance": manifest.get("tolerance"),
+            "certified_top": manifest.get("certified_top") or CERTIFIED_TOP}
+
+
 def load_snapshot(path: Path, check: bool = True) -> Snapshot:
     """Rebuild a ranker from snapshot folder ``path`` (residual recomputed exactly)."""
     path = Path(path)
     manifest = read_manifest(path)
-    if manifest.get("format") != FORMAT:
-        raise SnapshotError(f"{path}: snapshot format {manifest.get('format')!r}, this version reads {FORMAT}")
+    if manifest.get("format") not in READABLE_FORMATS:
+        raise SnapshotError(f"{path}: snapshot format {manifest.get('format')!r}, "
+                            f"this version reads {', '.join(map(str, READABLE_FORMATS))}")
     if check:
         verify(path, manifest)
     try:
@@ -427,7 +472,7 @@ def load_snapshot(path: Path, check: bool = True) -> Snapshot:
         seeds = pq.read_table(path / "seeds.parquet")
     except (OSError, pa.ArrowException) as exc:
         raise SnapshotError(f"{path}: unreadable Parquet file: {exc}") from exc
-    ranker = Ranker(damping=manifest["damping"], tolerance=manifest["tolerance"])
+    ranker = Ranker(damping=manifest["damping"], **_targets(manifest))
     glob = scores.filter(pa.compute.equal(scores["profile"], GLOBAL))
     ranker.ids = NodeIds(glob["node"])
     n = len(ranker.ids)
