@@ -20,6 +20,9 @@ What is measured (every figure comes from the run that prints it):
 
   each result is compared with an exact solve (certified 1e-11, warm from the
   previous exact solution) and ranktide's certified bound is shown;
+* the per-node contract (:mod:`bench_per_node`): every contender promising
+  each score within relative 1e-3, the certified warm start beside its
+  oracle-stopped best case, single-event latency and the backlog rate;
 * personalization profiles seeded by seed events, engine throughput at the
   service's micro-batch, snapshot write and load, the replay floor (reading
   and parsing a log against replaying it), and the service end to end on a
@@ -50,6 +53,7 @@ from ranktide.replay.bench_common import (
     THROUGHPUT_BATCHES, TOLERANCE, _finite_or_none, _peak_rss_bytes, _say, machine_info,
 )
 from ranktide.replay.bench_end_to_end import measure_e2e, measure_replay
+from ranktide.replay.bench_per_node import measure_per_node
 from ranktide.replay.bench_engine import (
     _copy_tracker, contenders_for, measure_backlog, measure_profiles, measure_real_graph,
     measure_snapshot, measure_throughput, reserve_for, run_batches, scaling_run, start_tracker,
@@ -123,11 +127,14 @@ def run_all(args: argparse.Namespace, folder: Path) -> dict:
     tr = start_tracker(loaded, args.seed)
     report["batches"] = run_batches(tr, args.batches, args.repeats, contenders_for(args.size), ["global"],
                                     f"update batches ({args.size})")
+    micro, settle_interval = ServiceConfig().micro_batch, ServiceConfig().settle_interval
+    report["per_node"] = measure_per_node(loaded, args.batches, args.repeats, args.seed,
+                                          [c for c in contenders_for(args.size) if c in ("igraph_prpack", "networkx")],
+                                          micro, BACKLOG_BATCHES[args.size], settle_interval)
     report["scaling"] = {args.size: _scaling_rows(report["batches"])}
     if args.size == "large":
         for other in ("small", "medium"):
             report["scaling"][other] = _scaling_rows(scaling_run(other, args.batches, args.repeats, args.seed))
-    micro = ServiceConfig().micro_batch
     _say(f"engine throughput at micro-batches of {micro:,}")
     report["throughput"] = measure_throughput(tr, micro, THROUGHPUT_BATCHES[args.size])
     _say("snapshot write and load")

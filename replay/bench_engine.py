@@ -281,7 +281,7 @@ def ranker_over(eng: Engine):
     from ranktide.solver import Ranker
     from ranktide.solver.ids import NodeIds
 
-    ranker = Ranker(DAMPING, TOLERANCE)
+    ranker = Ranker(DAMPING, rtol=None, tolerance=TOLERANCE)
     ranker.engine = eng
     ranker.ids = NodeIds([str(i) for i in range(eng.n_nodes)])
     return ranker

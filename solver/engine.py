@@ -25,6 +25,7 @@ References
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -84,6 +85,10 @@ BUDGET_PARTS = 4.0
 
 #: Attempts to settle a personalization to its contract (each tightens the thresholds).
 CONTRACT_ATTEMPTS = 8
+
+#: A personalization's K-th best estimate is re-sorted only when fewer than K estimates
+#: reach this share of the value last sorted (a count certifies the lower bound).
+KTH_MARGIN = 0.8
 
 
 @dataclass
@@ -156,19 +161,8 @@ class Engine:
     ) -> None:
         if not 0.0 < damping < 1.0:
             raise ValueError(f"damping must lie strictly between 0 and 1, got {damping}")
-        if rtol is None and tolerance is None:
-            raise ValueError("set rtol, tolerance or both: settle needs a target")
-        if rtol is not None and not 0.0 < rtol < 1.0:
-            raise ValueError(f"rtol must lie strictly between 0 and 1, got {rtol}")
-        if tolerance is not None and not tolerance > 0.0:
-            raise ValueError(f"tolerance must be > 0, got {tolerance}")
-        if int(certified_top) < 1:
-            raise ValueError(f"certified_top must be at least 1, got {certified_top}")
         self.damping = float(damping)
         self.teleport = 1.0 - self.damping
-        self.rtol = None if rtol is None else float(rtol)
-        self.tolerance = None if tolerance is None else float(tolerance)
-        self.certified_top = int(certified_top)
         self.graph = DynamicGraph(node_capacity, edge_capacity)
         self.profiles: list[str] = [GLOBAL]
         cap = self.graph.node_capacity
@@ -180,12 +174,32 @@ class Engine:
         self._n_active = np.zeros(1, dtype=np.int64)
         self._parked = np.zeros(1)  # residual mass of nodes parked off the active lists
         self._parked_max = np.zeros(1)  # largest |r| parked since the last full listing
-        self._weights: list[Weights] = [Weights(0.0, self._global_threshold())]
+        self._psum = np.zeros(1)  # sum of p per profile, kept by the kernels (re-summed on every full pass)
+        self._weights: list[Weights] = [Weights()]
+        self._kth: dict[int, float] = {}  # profile -> its K-th best estimate when last sorted
+        self.set_targets(rtol, tolerance, certified_top)
         self._seed_error = np.zeros(1)  # rounding bound of seed updates to the residual, per profile
         self._queue = np.zeros(cap, dtype=np.int32)
         self._in_queue = np.zeros(cap, dtype=np.bool_)
         self._tmp = np.zeros(cap)
         self._spill = np.zeros((kernels.SWEEP_CHUNKS - 1, cap))  # partial sums of parallel sweeps
+
+    def set_targets(self, rtol: float | None = RTOL, tolerance: float | None = None,
+                    certified_top: int | None = None) -> None:
+        """Change the settle targets (the next :meth:`settle` meets them)."""
+        if rtol is None and tolerance is None:
+            raise ValueError("set rtol, tolerance or both: settle needs a target")
+        if rtol is not None and not 0.0 < rtol < 1.0:
+            raise ValueError(f"rtol must lie strictly between 0 and 1, got {rtol}")
+        if tolerance is not None and not tolerance > 0.0:
+            raise ValueError(f"tolerance must be > 0, got {tolerance}")
+        if certified_top is not None and int(certified_top) < 1:
+            raise ValueError(f"certified_top must be at least 1, got {certified_top}")
+        self.rtol = None if rtol is None else float(rtol)
+        self.tolerance = None if tolerance is None else float(tolerance)
+        if certified_top is not None:
+            self.certified_top = int(certified_top)
+        self._weights[0] = Weights(0.0, self._global_limit(0.0) if self.rtol is not None else 1.0)
 
     # ------------------------------------------------------------ structure
     @property
@@ -214,6 +228,7 @@ class Engine:
         self._n_active = np.append(self._n_active, 0)
         self._parked = np.append(self._parked, 0.0)
         self._parked_max = np.append(self._parked_max, 0.0)
+        self._psum = np.append(self._psum, 0.0)
         self._seed_error = np.append(self._seed_error, 0.0)
         self._weights.append(Weights())
         return len(self.profiles) - 1
@@ -291,7 +306,7 @@ class Engine:
                 g.table, g.counters,
                 self.P, self.R, self.S, self.teleport, self.damping,
                 self._active, self._n_active, self._in_active, self._parked, self._seed_error,
-                kernels.LOCAL_REPAIR_MAX_DEGREE,
+                kernels.LOCAL_REPAIR_MAX_DEGREE, self._psum,
             )
         )
 
@@ -333,59 +348,133 @@ class Engine:
         return min(budgets)
 
     # ------------------------------------------------------------ per-node contract
-    def _global_threshold(self) -> float:
-        """Largest ``max |r_g|`` at which every global score is within relative ``rtol``.
-
-        Per-node lemma (``solver.bounds``): the published score's certified relative
-        error is ``2 rho / (1 - 2 rho)``; at most ``rtol / (1 + rtol)`` it certifies
-        ``|published - exact| <= rtol * exact``.
-        """
-        if self.rtol is None:
-            return 1.0
-        return THRESHOLD_MARGIN * self.rtol / (2.0 + 4.0 * self.rtol)
-
     def _settle_relative(self, k: int) -> SettleStats:
         """Settle profile ``k`` to the per-node contract."""
         if k == 0:
-            return self._push_and_sweep(k, self._weights[0])
+            return self._settle_global()
         stats = SettleStats()
         n = self.n_nodes
         if not self.S[k, :n].any():
             return stats
         weights = None
-        for _ in range(CONTRACT_ATTEMPTS):
-            weights = self._personal_weights(k, weights)
+        for attempt in range(CONTRACT_ATTEMPTS):
+            weights = self._personal_weights(k, weights, fresh=attempt > 0)
             self._weights[k] = weights
             stats.add(self._push_and_sweep(k, weights))
-            if self.certificate(self.profiles[k]).meets(self.rtol):
+            if self._sum_shift(k) <= self._budget_part():
                 break
         return stats
 
-    def _personal_weights(self, k: int, previous: Weights | None) -> Weights:
+    def _budget_part(self) -> float:
+        """A personalization's share of the error budget for each of its error terms."""
+        return self.rtol / (1.0 + self.rtol) / BUDGET_PARTS
+
+    def _sum_shift(self, k: int) -> float:
+        """``||r_k||_1 / sum p_k``: how far the normalisation may move (``inf`` before any estimate)."""
+        r1 = kernels.active_l1(k, self.R, self._active, self._n_active, self._parked)
+        s_p = self._psum[k]
+        return r1 / s_p if s_p > r1 else np.inf
+
+    def _settle_global(self) -> SettleStats:
+        """Push the global profile to the largest threshold that certifies ``rtol``.
+
+        The published score's certified relative error is
+        ``(rho / (1 - rho) + delta) / (1 - delta)`` with ``rho = max |r|`` and
+        ``delta = ||r||_1 / sum p`` (``solver.bounds``). Pushes never raise
+        ``||r||_1``, so a threshold chosen from ``delta`` after pushing stays
+        valid; thresholds come from a ladder of quarter octaves below the
+        largest one, so that small changes of ``delta`` do not unpark nodes.
+        """
+        stats = SettleStats()
+        weights = self._weights[0]
+        for _ in range(64):
+            stats.add(self._push_and_sweep(0, weights))
+            limit = self._global_limit(self._sum_shift(0))
+            if weights.beta <= limit:
+                break
+            weights = Weights(0.0, self._ladder(limit, weights.beta))
+            self._weights[0] = weights
+        return stats
+
+    def _global_limit(self, delta: float) -> float:
+        """Largest ``max |r_g|`` certifying ``rtol`` given the sum shift ``delta`` (0 if none does)."""
+        target = self.rtol / (1.0 + self.rtol)
+        q = target * (1.0 - delta) - delta
+        return THRESHOLD_MARGIN * q / (1.0 + q) if q > 0.0 else 0.0
+
+    def _ladder(self, limit: float, current: float) -> float:
+        """The largest rung ``top * 2**(-j/4)`` at most ``limit``, and below ``current``."""
+        top = self._global_limit(0.0)
+        if limit <= 0.0:
+            return current / 2.0
+        rungs = max(math.ceil(4.0 * math.log2(top / limit) - 1e-9), 0)
+        return min(top * 2.0 ** (-rungs / 4.0), current / 2.0 ** 0.25)
+
+    def _personal_weights(self, k: int, previous: Weights | None, fresh: bool) -> Weights:
         """Thresholds ``alpha s + beta`` under which personalization ``k`` meets ``rtol``.
 
         With ``c = max |r| / (alpha s + beta) <= 1`` the lemma bounds
         ``|x_k(v) - p_k(v)|`` by ``alpha x_k(v) + beta x_g(v)``: ``alpha`` takes a
         part of the relative budget; ``beta`` is sized so that even at the
         largest global score the absolute part stays within that share of the
-        ``K``-th best score. A retry (``previous``) at least halves both.
+        ``K``-th best score (a certified lower bound, :meth:`_kth_score`). A
+        retry (``previous``) halves ``beta``.
         """
         n = self.n_nodes
-        part = self.rtol / (1.0 + self.rtol) / BUDGET_PARTS
-        p = self.P[k, :n]
-        positive = p[p > 0.0]
-        if positive.size:
-            kth = kth_largest(positive, self.certified_top)
-        else:
-            seeds = self.S[k, :n]
-            kth = self.teleport * kth_largest(seeds[seeds > 0.0], self.certified_top)
-        xg_max = float(global_upper(self.P[0, :n], self.R[0, :n]).max(initial=0.0))
+        part = self._budget_part()
+        kth = self._kth_score(k, fresh)
+        theta_g = self._weights[0].beta
+        xg_max = float(self.P[0, :n].max(initial=0.0)) / (1.0 - min(theta_g, 0.5))
         alpha = part * THRESHOLD_MARGIN
         beta = alpha * (1.0 - part) * kth / xg_max if xg_max > 0.0 else alpha * kth
         if previous is not None:
-            alpha = min(alpha, 0.5 * previous.alpha)
             beta = min(beta, 0.5 * previous.beta)
         return Weights(alpha, max(beta, 1e-300))
+
+    def _kth_score(self, k: int, fresh: bool) -> float:
+        """A certified lower bound on the ``certified_top``-th largest estimate of profile ``k``.
+
+        The partial sort is cached; in between, a cheap count checks that at
+        least ``K`` estimates still reach :data:`KTH_MARGIN` times the cached
+        value (then the K-th largest does too), else it is recomputed.
+        """
+        n = self.n_nodes
+        p = self.P[k, :n]
+        cached = self._kth.get(k, 0.0)
+        if not fresh and cached > 0.0 and \
+                np.count_nonzero(p >= KTH_MARGIN * cached) >= min(self.certified_top, np.count_nonzero(p > 0.0)):
+            return KTH_MARGIN * cached
+        positive = p[p > 0.0]
+        if positive.size:
+            cached = kth_largest(positive, self.certified_top)
+        else:  # nothing settled yet: x_k >= a s_k gives a lower bound
+            seeds = self.S[k, :n]
+            cached = self.teleport * kth_largest(seeds[seeds > 0.0], self.certified_top)
+        self._kth[k] = cached
+        return cached
+
+    def settle_certified(self) -> dict[str, Certificate]:
+        """Settle, then certify every profile; tighten and settle again where a certificate falls short.
+
+        What publishing calls (snapshots, the read API): the returned
+        certificates meet ``rtol`` unless rounding makes it impossible.
+        """
+        self.settle()
+        certificates = {}
+        for k, name in enumerate(self.profiles):
+            cert = self.certificate(name)
+            attempt = 0
+            while self.rtol is not None and not cert.meets(self.rtol) and attempt < CONTRACT_ATTEMPTS:
+                attempt += 1
+                if k == 0:
+                    weights = Weights(0.0, self._weights[0].beta / 2.0)
+                else:
+                    weights = self._personal_weights(k, self._weights[k], fresh=True)
+                self._weights[k] = weights
+                self._push_and_sweep(k, weights)
+                cert = self.certificate(name)
+            certificates[name] = cert
+        return certificates
 
     def _push_and_sweep(self, k: int, weights: Weights) -> SettleStats:
         """Forward push to the thresholds ``weights``; global sweeps where pushes would cost more."""
@@ -402,7 +491,7 @@ class Engine:
                 k, n, self.n_edges, g.head, g.out_weight, g.out_degree, g.dst, g.weight, g.next,
                 self.P, self.R, self.S, weights.alpha, weights.beta, self.teleport, self.damping,
                 self._active, self._n_active, self._in_active, self._parked,
-                self._queue, self._in_queue, edge_limit, stats,
+                self._queue, self._in_queue, edge_limit, stats, self._psum,
             )
             if not handover or not self._sweep_to_thresholds(k, weights, edge_limit, stats):
                 break
@@ -472,6 +561,7 @@ class Engine:
         )
         if sweep:
             s_p = self._sweep_until_done(k, tol, rho, s_p, abs_p, stats)
+        self._psum[k] = s_p
         self._compact(k, tol, float(s_p))
         return SettleStats(*(int(x) for x in stats)), float(s_p)
 
@@ -504,7 +594,9 @@ class Engine:
         kernels.sweep_begin(k, self.P, self.R, self._tmp, n, g.out_weight, self.teleport, self.damping)
         kernels.scatter_slots(self.R[k], self._spill, self._tmp, n, g.src, g.dst, g.weight,
                               int(g.counters[0]), self.graph.unit_weights)
-        return kernels.profile_sums(k, self.P, self.R, n)
+        sums = kernels.profile_sums(k, self.P, self.R, n)
+        self._psum[k] = sums[1]
+        return sums
 
     def _compact(self, k: int, tol: float | None, s_p: float) -> None:
         """Shorten the active list: park residuals that no target needs pushed.
@@ -545,6 +637,7 @@ class Engine:
         scale = max(float(np.abs(self.S[k, :n]).sum()), 1.0)
         drift = float(np.abs(fresh - self.R[k, :n]).max(initial=0.0)) / scale
         self.R[k, :n] = fresh
+        self._psum[k] = float(self.P[k, :n].sum())
         self._seed_error[k] = 0.0
         self._reset_active(k)
         return drift

@@ -102,3 +102,75 @@ def solve(
         if bound <= tol:
             return ExactSolution(x, it, bound)
     return ExactSolution(x, max_iter, bound)
+
+
+def global_threshold(rtol: float) -> float:
+    """Largest ``max |r|`` of a global-profile iterate that certifies relative ``rtol`` on every node.
+
+    The per-node lemma (``solver.bounds``) gives the published score a
+    certified relative error ``2 rho / (1 - 2 rho)``; at most
+    ``rtol / (1 + rtol)`` it certifies ``|published - exact| <= rtol * exact``.
+    """
+    return rtol / (2.0 + 4.0 * rtol)
+
+
+def solve_to_rtol(
+    PT: sp.csr_matrix,
+    s: np.ndarray,
+    damping: float = 0.85,
+    rtol: float = 1e-3,
+    x0: np.ndarray | None = None,
+    xbar_g: np.ndarray | None = None,
+    certified_top: int | None = None,
+    max_iter: int = 100_000,
+) -> ExactSolution:
+    """Power iteration stopped when its own residual certifies the per-node contract.
+
+    The iterate ``x_k`` is returned (not ``x_{k+1}``): the per-node bound of
+    ``x_k`` follows from ``r_k = (x_{k+1} - x_k) / a``, but a step of the
+    iteration can raise the largest residual at a hub, so the next iterate is
+    not certified by it.
+
+    Parameters
+    ----------
+    PT, s, damping, x0, max_iter
+        As for :func:`solve`.
+    rtol : float
+        Relative error certified on every node (global profile) or on the
+        ``certified_top`` best nodes (a personalization, which then needs
+        ``xbar_g``, an upper bound on the global solution).
+    xbar_g : ndarray, optional
+        Upper bound on the global profile's unnormalised solution; ``None``
+        for the global profile itself (``s = 1``).
+    certified_top : int, optional
+        ``K`` of a personalization's contract.
+
+    Returns
+    -------
+    ExactSolution
+        ``bound`` holds the certified relative error reached.
+    """
+    from .bounds import certify, normalised_bounds, unnormalised_bounds
+
+    a = 1.0 - damping
+    base = a * np.asarray(s, dtype=np.float64)
+    x = base.copy() if x0 is None else np.asarray(x0, dtype=np.float64).copy()
+    limit = global_threshold(rtol)
+    reached = np.inf
+    for it in range(1, max_iter + 1):
+        nxt = base + damping * (PT @ x)
+        r = (nxt - x) / a
+        if xbar_g is None:
+            rho = float(np.abs(r).max(initial=0.0))
+            reached = 2.0 * rho / (1.0 - 2.0 * rho) if rho < 0.5 else np.inf
+            if rho <= limit:
+                return ExactSolution(x, it, reached)
+        else:
+            err = unnormalised_bounds(x, r, s, xbar_g, None)
+            cert = certify(x / max(float(x.sum()), 1e-300), normalised_bounds(x, r, err, certified_bound(x, r)),
+                           certified_bound(x, r), certified_top)
+            reached = max(cert.rtol_reached, cert.absolute_reached)
+            if cert.meets(rtol):
+                return ExactSolution(x, it, reached)
+        x = nxt
+    return ExactSolution(x, max_iter, reached)

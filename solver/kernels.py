@@ -164,7 +164,7 @@ def _mark(k, v, R, active, n_active, in_active, parked):
 
 
 @njit(cache=True, inline="always")
-def _repair_rescale(P, R, k, u, v, w_old, w_new, W_old, W_new, a, d, active, n_active, in_active, parked):
+def _repair_rescale(P, R, k, u, v, w_old, w_new, W_old, W_new, a, d, active, n_active, in_active, parked, psum):
     """O(1) repair of [2]: rescale p(u) so flows on u's other edges stay put."""
     _mark(k, u, R, active, n_active, in_active, parked)
     _mark(k, v, R, active, n_active, in_active, parked)
@@ -178,6 +178,7 @@ def _repair_rescale(P, R, k, u, v, w_old, w_new, W_old, W_new, a, d, active, n_a
     else:
         p_new = p_u * W_new / W_old
         P[k, u] = p_new
+        psum[k] += p_new - p_u
         R[k, u] -= (p_new - p_u) / a
         delta = w_new - w_old
         if delta > 0.0:
@@ -230,7 +231,7 @@ def _out_weight_sum(head, e_w, e_next, u):
 def apply_events(
     op, src, dst, wt,
     head, out_weight, out_degree, e_src, e_dst, e_w, e_next, e_prev, table, counters,
-    P, R, S, a, d, active, n_active, in_active, parked, seed_error, local_max_degree,
+    P, R, S, a, d, active, n_active, in_active, parked, seed_error, local_max_degree, psum,
 ):
     """Apply one batch of events in order and repair every profile.
 
@@ -317,7 +318,7 @@ def apply_events(
                                    a, d, active, n_active, in_active, parked)
             else:
                 _repair_rescale(P, R, k, u, v, w_old, w_new, W_old, W_new, a, d,
-                                active, n_active, in_active, parked)
+                                active, n_active, in_active, parked, psum)
     return noop
 
 
@@ -650,7 +651,7 @@ def _threshold(S, k, u, alpha, beta):
 def push_to_thresholds(
     k, n, m,
     head, out_weight, out_degree, e_dst, e_w, e_next,
-    P, R, S, alpha, beta, a, d, active, n_active, in_active, parked, queue, in_queue, edge_limit, stats,
+    P, R, S, alpha, beta, a, d, active, n_active, in_active, parked, queue, in_queue, edge_limit, stats, psum,
 ):
     """Forward push, first in first out, until every active ``|r(u)| <= alpha s(u) + beta``.
 
@@ -696,6 +697,7 @@ def push_to_thresholds(
         if abs(ru) <= _threshold(S, k, u, alpha, beta):
             continue
         P[k, u] += a * ru
+        psum[k] += a * ru
         R[k, u] = 0.0
         stats[0] += 1
         W = out_weight[u]
@@ -742,6 +744,15 @@ def over_thresholds(k, n, R, S, alpha, beta, out_degree):
         if ratio > 1.0:
             frontier += out_degree[u]
     return worst, frontier
+
+
+@njit(cache=True, nogil=True)
+def active_l1(k, R, active, n_active, parked):
+    """``||r_k||_1``: the active residuals plus the parked mass."""
+    total = parked[k]
+    for i in range(n_active[k]):
+        total += abs(R[k, active[k, i]])
+    return total
 
 
 @njit(cache=True, nogil=True)

@@ -237,8 +237,7 @@ def write_snapshot(
     partial = root / f".snap-{seq:08d}.partial"
     eng = ranker.engine
     eng.recompute_residual()
-    eng.settle()
-    certificates = {name: eng.certificate(name) for name in eng.profiles}
+    certificates = eng.settle_certified()
     try:
         _clear_partials(root)
         partial.mkdir()

@@ -77,3 +77,20 @@ def test_other_sections_report_positive_figures(report: dict) -> None:
         assert _positive(part["ratio"]), fmt
         assert part["events_applied"] == report["replay"]["events"], fmt
     assert report["machine"]["nproc"] >= 1
+
+
+def test_per_node_section_holds_its_contract(report: dict) -> None:
+    """The per-node section: its keys, ranktide within every bound and within rtol on every batch."""
+    per_node = report["per_node"]
+    assert per_node["rtol"] == 1e-3
+    for key in ("speedup_vs_warm_start", "speedup_vs_oracle_warm_start"):
+        assert set(per_node[key]) == {"1", "10", "100"}
+        assert all(_positive(v) for v in per_node[key].values()), key
+    assert _positive(per_node["latency_ms"]["p50"]) and per_node["latency_ms"]["p99"] >= per_node["latency_ms"]["p50"]
+    assert _positive(per_node["events_per_second"])
+    assert per_node["within_bounds"] is True
+    assert per_node["max_relative_error"] <= per_node["rtol"]
+    for row in per_node["batches"] + [per_node["personalized"]]:
+        assert row["ranktide"]["within_bounds"] and row["ranktide"]["max_relative_error"] <= 1e-3, row["batch"]
+        # the certified warm start keeps the same promise
+        assert row["warm_start"]["max_relative_error"] <= 1e-3, row["batch"]
