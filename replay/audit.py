@@ -70,7 +70,7 @@ class ProfileAudit:
     kendall_tau_top_k: float
     largest_relative_errors: list[dict]
     recomputed_bound: float
-    residual_drift: float
+    residual_drift: float | None
     residual_drift_relative: float | None
     nodes_within_bounds: bool | None = None
     worst_node: str | None = None
@@ -80,8 +80,14 @@ class ProfileAudit:
     relative_error_certified: float | None = None
 
 
-def residual_drift(stated: float, recomputed: float) -> tuple[float, float | None]:
-    """Absolute drift of the bound, and the drift relative to the stated bound (None at or below DRIFT_FLOOR)."""
+def residual_drift(stated: float, recomputed: float) -> tuple[float | None, float | None]:
+    """Absolute drift of the bound, and the drift relative to the stated bound.
+
+    The relative figure is None when the stated bound is at or below
+    ``DRIFT_FLOOR``; both are None when no L1 bound is stated (infinite).
+    """
+    if not math.isfinite(stated):
+        return None, None
     drift = abs(recomputed - stated)
     return drift, (drift / stated if stated > DRIFT_FLOOR else None)
 
@@ -200,6 +206,8 @@ def _describe(result: dict) -> list[str]:
 
 
 def _drift_text(p: dict) -> str:
+    if p["residual_drift"] is None:
+        return "n/a (no L1 bound stated)"
     if p["residual_drift_relative"] is None:
         return f"{p['residual_drift']:.2e} absolute (stated bound {p['certified_bound']:.1e})"
     return f"{p['residual_drift_relative']:.2e} relative"

@@ -208,3 +208,13 @@ def test_audit_shows_a_drift_against_a_zero_bound_as_an_absolute_figure(tmp_path
     text = _cli("audit", str(tmp_path / "snaps")).stdout
     drift = text.split("residual drift ")[1].split()[0]
     assert float(drift) < 1e-12 and "absolute" in text
+
+
+def test_residual_drift_figures() -> None:
+    """Plain arithmetic: |recomputed - stated|, relative only above the floor, none without a stated bound."""
+    from ranktide.replay.audit import DRIFT_FLOOR, residual_drift
+
+    assert residual_drift(2e-6, 3e-6) == (pytest.approx(1e-6), pytest.approx(0.5))
+    assert residual_drift(0.0, 1e-15) == (1e-15, None)
+    assert residual_drift(DRIFT_FLOOR, 2 * DRIFT_FLOOR) == (DRIFT_FLOOR, None)
+    assert residual_drift(float("inf"), 1e-3) == (None, None)  # the manifest states no L1 bound (null)
