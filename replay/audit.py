@@ -23,7 +23,6 @@ newer ones that fail their checksums are named and fail the audit too.
 
 from __future__ import annotations
 
-import json
 import math
 import sys
 from dataclasses import asdict, dataclass
@@ -290,10 +289,12 @@ def run_audit(root: Path, snapshot: str | None, every: bool, k: int, as_json: bo
             print("\n".join(_describe(results[-1])))
     if as_json:
         # the reading commands' style: one object; a single audit's keys, or every audit under 'audits'
+        from ranktide.replay.reading import emit_json  # infinite figures print as null
+
         if every:
-            print(json.dumps({"root": str(root), "audits": results}, indent=2))
+            emit_json({"root": str(root), "audits": results})
         elif results:
-            print(json.dumps({**results[0], "skipped": skipped}, indent=2))
+            emit_json({**results[0], "skipped": skipped})
     if plot is not None and results:
         print(f"plot: {plot_series(results, plot)}", file=sys.stderr)
     return 1 if failed else 0
