@@ -336,8 +336,11 @@ def problem(path: Path, manifest: dict) -> str | None:
         f = Path(path) / fname
         if not f.is_file():
             return f"{fname} is missing"
-        if _sha256(f) != digest:
-            return f"{fname} fails its sha256 checksum"
+        try:
+            if _sha256(f) != digest:
+                return f"{fname} fails its sha256 checksum"
+        except OSError as exc:
+            return f"cannot read {fname}: {exc.strerror or exc}"
     return None
 
 
@@ -413,8 +416,11 @@ def select_snapshot(root: Path, name: str | None = None, on_skip=None) -> Select
         candidates, explicit = [root / name], True
     else:
         if not root.is_dir():
-            raise SnapshotError(f"{root}: no such folder")
-        candidates, explicit = list(reversed(snapshot_dirs(root))), False
+            raise SnapshotError(f"{root}: {'not a folder' if root.exists() else 'no such folder'}")
+        try:
+            candidates, explicit = list(reversed(snapshot_dirs(root))), False
+        except OSError as exc:
+            raise SnapshotError(f"{root}: cannot list snapshots: {exc.strerror or exc}") from exc
         if not candidates:
             raise SnapshotError(f"{root}: no snapshot here (expected folders named snap-NNNNNNNN)")
     skipped = []
