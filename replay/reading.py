@@ -245,7 +245,10 @@ SNAPSHOT_COLUMNS = [
 def list_snapshots(root: Path, as_json: bool = False) -> int:
     """``ranktide snapshots``: every snapshot under ``root``, oldest first, with its validity."""
     root = Path(root)
-    dirs = [root] if is_snapshot_folder(root) else snapshot_dirs(root)
+    try:
+        dirs = [root] if is_snapshot_folder(root) else snapshot_dirs(root)
+    except OSError as exc:
+        return _fail("snapshots", SnapshotError(f"{root}: cannot list snapshots: {exc.strerror or exc}"))
     if not dirs:
         what = "no such folder" if not root.is_dir() else "no snapshot here (expected folders named snap-NNNNNNNN)"
         return _fail("snapshots", SnapshotError(f"{root}: {what}"))
