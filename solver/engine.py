@@ -177,6 +177,8 @@ class Engine:
         self._psum = np.zeros(1)  # sum of p per profile, kept by the kernels (re-summed on every full pass)
         self._weights: list[Weights] = [Weights()]
         self._kth: dict[int, float] = {}  # profile -> its K-th best estimate when last sorted
+        #: Certificates of the last :meth:`settle_certified` (what was last published).
+        self.last_certificates: dict[str, Certificate] = {}
         self.set_targets(rtol, tolerance, certified_top)
         self._seed_error = np.zeros(1)  # rounding bound of seed updates to the residual, per profile
         self._queue = np.zeros(cap, dtype=np.int32)
@@ -474,6 +476,7 @@ class Engine:
                 self._push_and_sweep(k, weights)
                 cert = self.certificate(name)
             certificates[name] = cert
+        self.last_certificates = certificates
         return certificates
 
     def _push_and_sweep(self, k: int, weights: Weights) -> SettleStats:

@@ -24,6 +24,7 @@ class Metrics:
     last_snapshot: float = 0.0  # Unix time of the newest snapshot (written or restored); 0: none
     records_since_snapshot: int = 0  # records read that no snapshot covers yet
     bounds: dict[str, float] = field(default_factory=dict)
+    rtol_reached: dict[str, float] = field(default_factory=dict)
     lag: dict[str, int] = field(default_factory=dict)
     _rate_window: list[tuple[float, int, int]] = field(default_factory=list)
 
@@ -74,6 +75,12 @@ class Metrics:
             "# TYPE ranktide_certified_bound gauge",
         ]
         lines += [f'ranktide_certified_bound{{profile="{p}"}} {b:.6g}' for p, b in sorted(self.bounds.items())]
+        lines += [
+            "# HELP ranktide_rtol_reached Largest certified relative error of the last snapshot's scores "
+            "(per-node contract; the K best nodes of a personalization).",
+            "# TYPE ranktide_rtol_reached gauge",
+        ]
+        lines += [f'ranktide_rtol_reached{{profile="{p}"}} {b:.6g}' for p, b in sorted(self.rtol_reached.items())]
         lines += [
             "# HELP ranktide_consumer_lag Records not yet read, per partition (or bytes, per file).",
             "# TYPE ranktide_consumer_lag gauge",

@@ -142,18 +142,20 @@ class ScoreFeed:
         self._last = time.monotonic()
         names = ranker.node_names().to_pylist() if ranker.engine.n_nodes else []
         sent = 0
+        certificates = ranker.engine.settle_certified()
         for profile in ranker.profiles:
-            scores = ranker.scores(profile)
+            cert = certificates[profile]
+            scores = cert.scores
             old = self._sent.get(profile, np.zeros(0))
             prev = np.zeros_like(scores)
             prev[: old.size] = old[: scores.size]
             with np.errstate(divide="ignore", invalid="ignore"):
                 moved = np.abs(scores - prev) > self.threshold * np.abs(prev)
             moved &= (scores != prev)
-            bound = ranker.certified_bound(profile)
             for i in np.flatnonzero(moved):
                 value = {"node": names[i], "profile": profile, "score": float(scores[i]),
-                         "certified_bound": bound, "positions": positions}
+                         "error_bound": float(cert.bounds[i]), "certified_bound": cert.l1_bound,
+                         "positions": positions}
                 self._producer.produce(self.topic, key=f"{profile}/{names[i]}".encode(), value=json.dumps(value).encode())
                 if sent % 10_000 == 0:
                     self._producer.poll(0)
@@ -373,8 +375,9 @@ class Service:
     def _settle(self) -> None:
         """Bring every profile within the tolerance (scores are fresh again)."""
         if self._unsettled:
+            # the certified figures are exported at publish points (snapshots): a certificate is
+            # one pass over the nodes, too much for every settle of a small batch
             self.metrics.push_edges += self.ranker.settle().edge_touches
-            self.metrics.bounds = {p: self.ranker.certified_bound(p) for p in self.ranker.profiles}
             self._unsettled = False
         self._settled_at = time.monotonic()
 
@@ -387,7 +390,9 @@ class Service:
         self._events_at_snapshot = self._seen()
         self._unsettled = False
         self._settled_at = time.monotonic()
-        self.metrics.bounds = {p: self.ranker.certified_bound(p) for p in self.ranker.profiles}
+        certificates = self.ranker.engine.last_certificates
+        self.metrics.bounds = {p: c.l1_bound for p, c in certificates.items()}
+        self.metrics.rtol_reached = {p: max(c.rtol_reached, c.absolute_reached) for p, c in certificates.items()}
         self.source.commit(positions)
         removed = prune(self.out, self.cfg.keep_snapshots)
         self._dirty = False

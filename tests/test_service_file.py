@@ -190,6 +190,7 @@ def test_metrics_endpoint_and_json_logs(tmp_path: Path) -> None:
     _, err = proc.communicate(timeout=30)
     assert counted(metrics) == len(stream.records)
     assert metrics['ranktide_certified_bound{profile="global"}'] <= TOLERANCE
+    assert metrics['ranktide_rtol_reached{profile="global"}'] <= 1e-3
     assert metrics["ranktide_snapshots_total"] >= 1
     assert "# TYPE ranktide_consumer_lag gauge" in body
     entries = [json.loads(line) for line in err.decode().splitlines() if line.startswith("{")]
