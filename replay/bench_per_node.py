@@ -88,24 +88,28 @@ class PerNodeRun:
         self.sampler = loaded.sampler
         self.rng = np.random.default_rng(seed)
         self.x_exact, _, _ = _exact(self.engine, {})
+        self.push_log: list[tuple[float, int, int]] = []  # (settle seconds, push edges, sweeps)
 
-    def step(self, size: int) -> tuple[float, object]:
-        """Apply and settle one batch of ``size`` mixed events; return the seconds and the batch."""
+    def step(self, size: int) -> tuple[float, float, object]:
+        """Apply and settle one batch of ``size`` mixed events; return the seconds, the settle's and its work."""
         eng = self.engine
         batch = mixed_batch(size, self.edges, self.sampler, self.rng)
         started = time.perf_counter()
         eng.apply(batch.op, batch.src, batch.dst, batch.weight)
-        eng.settle()
-        seconds = time.perf_counter() - started
+        settle_started = time.perf_counter()
+        stats = eng.settle()
+        ended = time.perf_counter()
         self.edges.update(batch.inserted, batch.deleted)
-        return seconds, batch
+        self.push_log.append((ended - settle_started, stats.push_edges, stats.sweeps))
+        return ended - started, ended - settle_started, stats
 
     def measure(self, size: int, contenders: list[str], profiles: list[str]) -> dict:
         """One batch through ranktide and every contender; errors checked against the exact solve."""
         eng = self.engine
-        seconds, _ = self.step(size)
+        seconds, settle_s, stats = self.step(size)
         x_new, (src, dst, w, PT), pt_s = _exact(eng, self.x_exact)
-        row: dict = {"ranktide": {"seconds": seconds}}
+        row: dict = {"ranktide": {"seconds": seconds, "settle_seconds": settle_s, "push_edges": stats.push_edges,
+                                  "sweeps": stats.sweeps, "edge_touches": stats.edge_touches}}
         cert_s = 0.0
         worst_rel, within = 0.0, True
         for p in profiles:
@@ -148,9 +152,11 @@ def _summary(size: int, rows: list[dict]) -> dict:
     for name in rows[0]:
         vals = [r[name] for r in rows]
         item = {"seconds_per_batch": _median([v["seconds"] for v in vals])}
-        for key in ("iterations", "certificate_seconds"):
+        for key in ("iterations", "certificate_seconds", "edge_touches", "sweeps"):
             if key in vals[0]:
                 item[key] = _median([v[key] for v in vals])
+        if "edge_touches" in item:
+            item["edge_touches_per_event"] = item.pop("edge_touches") / size
         if "max_relative_error" in vals[0]:
             item["max_relative_error"] = max(v["max_relative_error"] for v in vals)
         if "within_bounds" in vals[0]:
@@ -221,6 +227,9 @@ def measure_per_node(loaded: Loaded, sizes: list[int], repeats: int, seed: int, 
     personal = _summary(PERSONAL_BATCH, [run.measure(PERSONAL_BATCH, ["warm_start", "oracle_warm_start"],
                                                      ["global", *profiles]) for _ in range(repeats)])
     by_size = {str(r["batch"]): r for r in rows}
+    # settles done by pushes alone: their time over the edges they touched (includes the queue work)
+    push_only = [v for v in run.push_log if v[2] == 0 and v[1] > 0]
+    push_ns = 1e9 * sum(v[0] for v in push_only) / sum(v[1] for v in push_only) if push_only else None
     return {
         "rtol": RTOL,
         "batches": rows,
@@ -231,6 +240,7 @@ def measure_per_node(loaded: Loaded, sizes: list[int], repeats: int, seed: int, 
         "events_per_second": backlog["events_per_second"],
         "backlog": backlog,
         "personalized": {"profiles": PERSONAL_PROFILES, "batch": PERSONAL_BATCH, **personal},
+        "push_ns_per_edge": push_ns,
         "max_relative_error": max(r["ranktide"]["max_relative_error"] for r in rows),
         "within_bounds": all(r["ranktide"]["within_bounds"] for r in rows),
     }

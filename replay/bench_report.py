@@ -230,7 +230,9 @@ def _per_node_lines(p: dict) -> list[str]:
         "'publish' is the certificate (one pass over the nodes) a snapshot or read adds.",
         _table(headers, rows),
         f"single events: apply + settle p50 {lat['p50']:.3f} ms, p99 {lat['p99']:.3f} ms over {lat['events']} events; "
-        f"backlog schedule {p['events_per_second']:,.0f} events/s; every node within its bound: {p['within_bounds']}",
+        f"backlog schedule {p['events_per_second']:,.0f} events/s; push cost "
+        f"{_fmt_num(p.get('push_ns_per_edge'), '.1f')} ns per touched edge; every node within its bound: "
+        f"{p['within_bounds']}",
         f"personalized stream ({pers['profiles']} profiles + global, {pers['batch']}-event batches): "
         f"{pers['speedup']['warm_start']:.1f}x over the certified warm start, "
         f"{pers['speedup']['oracle_warm_start']:.1f}x over the oracle",

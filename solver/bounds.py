@@ -191,13 +191,16 @@ def certify(scores: np.ndarray, bounds: np.ndarray, l1_bound: float, certified_t
     return Certificate(scores, bounds, float(l1_bound), k, threshold, rtol_reached, absolute_reached)
 
 
-def rank_ranges(scores: np.ndarray, bounds: np.ndarray, nodes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def rank_ranges(scores: np.ndarray, bounds: np.ndarray, nodes: np.ndarray,
+                unlisted: int = 0, unlisted_bound: float = 0.0) -> tuple[np.ndarray, np.ndarray]:
     """Best and worst possible rank (1 = first) of ``nodes`` given the intervals ``score +- bound``.
 
     Node ``v`` is certainly above ``w`` when ``lo(v) > hi(w)``; so ``v``'s rank
     runs from ``1 + #{w : lo(w) > hi(v)}`` to ``1 + #{w != v : hi(w) >= lo(v)}``
     (design notes 4b, after Wills & Ipsen [2]). Sorting makes it
-    ``O((n + len(nodes)) log n)``.
+    ``O((n + len(nodes)) log n)``. ``unlisted`` more nodes, published as 0
+    with the bound ``unlisted_bound`` (a personalization's omitted nodes),
+    take part too.
     """
     lo = np.sort(scores - bounds)
     hi = np.sort(scores + bounds)
@@ -206,6 +209,9 @@ def rank_ranges(scores: np.ndarray, bounds: np.ndarray, nodes: np.ndarray) -> tu
     best = 1 + (lo.size - np.searchsorted(lo, hi_v, side="right"))
     # every w with hi(w) >= lo(v), v itself included (hi(v) >= lo(v)), hence no 1 +
     worst = hi.size - np.searchsorted(hi, lo_v, side="left")
+    if unlisted:
+        best = best + np.where(-unlisted_bound > hi_v, unlisted, 0)
+        worst = worst + np.where(unlisted_bound >= lo_v, unlisted, 0)
     return best.astype(np.int64), worst.astype(np.int64)
 
 

@@ -300,17 +300,24 @@ class Engine:
             top = max(top, int(dst[edge_ops].max()) + 1)
         n_inserts = int(np.count_nonzero(op == kernels.OP_INSERT))
         self.ensure_nodes(max(top, self.n_nodes), n_inserts)
-        g = self.graph.arrays
-        return int(
-            kernels.apply_events(
+        noop, done = 0, 0
+        while done < op.size:
+            if done:
+                # a block had to move and the slot arrays were full: grow them, go on from there
+                self.graph.reserve_slots(2 * int(self.graph.arrays.cap[src[done]]) + 2 * (op.size - done))
+            g = self.graph.arrays
+            more, done = kernels.apply_events(
                 op, src, dst, weight,
-                g.head, g.out_weight, g.out_degree, g.src, g.dst, g.weight, g.next, g.prev,
+                g.start, g.cap, g.out_weight, g.out_degree, g.src, g.dst, g.weight, g.free_blocks,
                 g.table, g.counters,
                 self.P, self.R, self.S, self.teleport, self.damping,
                 self._active, self._n_active, self._in_active, self._parked, self._seed_error,
-                kernels.LOCAL_REPAIR_MAX_DEGREE, self._psum,
+                kernels.LOCAL_REPAIR_MAX_DEGREE, self._psum, done,
             )
-        )
+            noop += int(more)
+        if self.graph.needs_compaction():
+            self.graph.compact()
+        return noop
 
     def settle(self, tolerance: float | None = None) -> SettleStats:
         """Push every profile until it meets the contract: ``rtol`` and, if set, the L1 ``tolerance``.
@@ -388,7 +395,8 @@ class Engine:
         largest one, so that small changes of ``delta`` do not unpark nodes.
         """
         stats = SettleStats()
-        weights = self._weights[0]
+        weights = Weights(0.0, self._global_limit(0.0))  # the top rung: delta is usually tiny
+        self._weights[0] = weights
         for _ in range(64):
             stats.add(self._push_and_sweep(0, weights))
             limit = self._global_limit(self._sum_shift(0))
@@ -491,7 +499,7 @@ class Engine:
         edge_limit = max(PUSH_EDGE_SHARE * self.n_edges, PUSH_EDGE_FLOOR)
         for _ in range(1_000):
             handover = kernels.push_to_thresholds(
-                k, n, self.n_edges, g.head, g.out_weight, g.out_degree, g.dst, g.weight, g.next,
+                k, n, self.n_edges, g.start, g.out_weight, g.out_degree, g.dst, g.weight,
                 self.P, self.R, self.S, weights.alpha, weights.beta, self.teleport, self.damping,
                 self._active, self._n_active, self._in_active, self._parked,
                 self._queue, self._in_queue, edge_limit, stats, self._psum,
@@ -557,7 +565,7 @@ class Engine:
         stats = np.zeros(5, dtype=np.int64)
         sweep, rho, s_p, abs_p = kernels.settle_profile(
             k, tol, self.n_nodes, self.n_edges,
-            g.head, g.out_weight, g.out_degree, g.dst, g.weight, g.next,
+            g.start, g.out_weight, g.out_degree, g.dst, g.weight,
             self.P, self.R, self.teleport, self.damping,
             self._active, self._n_active, self._in_active, self._parked,
             self._queue, self._in_queue, SWEEP_SHARE, THETA_STEP, PUSH_LIMIT, stats,
@@ -692,9 +700,11 @@ class Engine:
         _check_weights(np.zeros(src.size, np.int8), weight)
         if min(int(src.min()), int(dst.min())) < 0 or max(int(src.max()), int(dst.max())) >= self.n_nodes:
             raise ValueError(f"edge endpoints must lie in 0 .. {self.n_nodes - 1}")
+        sizes = self.graph.slots_for(np.bincount(src, minlength=self.n_nodes)).astype(np.int32)
+        self.graph.reserve_slots(int(sizes.sum()))
         g = self.graph.arrays
-        twice = kernels.load_edges(src, dst, weight, g.head, g.out_weight, g.out_degree, g.src, g.dst,
-                                   g.weight, g.next, g.prev, g.table, g.counters)
+        twice = kernels.load_edges(src, dst, weight, sizes, g.start, g.cap, g.out_weight, g.out_degree,
+                                   g.src, g.dst, g.weight, g.table, g.counters)
         if twice >= 0:
             raise ValueError(f"edge {twice} ({int(src[twice])} -> {int(dst[twice])}) is listed twice")
 

@@ -6,16 +6,23 @@ The graph is stored for two access patterns that the solver needs:
   it. An open-addressing hash table (linear probing, backward-shift deletion,
   so no tombstones) maps the pair ``(u, v)`` to an *edge slot* in O(1)
   expected time.
-* *out-neighbour scans*: every node heads a doubly linked list of its out-edge
-  slots, so a push visits exactly the out-edges of one node and a deletion
-  unlinks a slot in O(1).
+* *out-neighbour scans*: the out-edges of node ``u`` sit side by side in a
+  *block* of slots, ``start[u] .. start[u] + out_degree[u] - 1``, with
+  ``cap[u]`` slots reserved. A push reads them in one sequential run (a
+  linked list of slots, the first design, cost a cache miss per edge). A
+  delete moves the block's last edge into the hole, so blocks stay packed; an
+  insert into a full block moves it to a block twice as large (amortised
+  O(1)); freed blocks wait in lists by size class and are reused; when slack
+  passes :data:`COMPACT_SLACK` of the stored edges the whole store is rewritten
+  in node order (:meth:`DynamicGraph.compact`).
 
-Edge slots live in parallel arrays (``src``, ``dst``, ``weight``, ``next``,
-``prev``); a freed slot is recycled through a free list. A global sweep reads
-the slot arrays front to back, which needs no compressed-row copy of the graph.
+Edge slots live in parallel arrays (``src``, ``dst``, ``weight``); every slot
+not holding an edge has ``src = -1``. A global sweep reads the slot arrays
+front to back, which needs no compressed-row copy of the graph.
 
-Memory per stored edge: 24 bytes of slot arrays plus 4 bytes per hash cell
-(load factor kept between 0.35 and 0.7), about 30 to 36 bytes in all.
+Memory per stored edge: 16 bytes of slot arrays times the blocks' fill (a
+bulk load leaves a quarter of slack) plus 4 bytes per hash cell (load factor
+kept between 0.35 and 0.7): about 26 to 36 bytes in all.
 
 All mutation happens inside the compiled kernels of :mod:`solver.kernels`;
 this module owns the arrays, their amortised growth and read-only views.
@@ -30,6 +37,10 @@ from numba import njit
 
 #: Largest hash-table load before it doubles. Linear probing stays short below 0.7.
 MAX_LOAD = 0.7
+#: Slack (slots handed out to blocks but holding no edge) that triggers a compaction,
+#: as a share of the stored edges; plus a floor so that small graphs never compact.
+COMPACT_SLACK = 0.6
+COMPACT_FLOOR = 1 << 16
 _EMPTY = np.int32(-1)
 _GOLDEN = np.uint64(0x9E3779B97F4A7C15)
 
@@ -64,28 +75,30 @@ class GraphArrays:
         Sum of out-edge weights ``W(u)``; 0 for a dangling node.
     out_degree : int32[node_capacity]
         Number of out-edges.
-    head : int32[node_capacity]
-        First out-edge slot of each node, -1 when it has none.
-    src, dst, next, prev : int32[edge_capacity]
-        Slot arrays. A free slot has ``src == -1`` and chains the free list
-        through ``next``.
+    start, cap : int32[node_capacity]
+        First slot and size of each node's block (``cap`` 0: no block).
+    src, dst : int32[edge_capacity]
+        Slot arrays; ``src == -1`` in a slot holding no edge. The first slot of
+        a free block links the next free block of its size class in ``dst``.
     weight : float64[edge_capacity]
         Weight of the edge in each slot.
+    free_blocks : int32[32]
+        First free block of each size class ``c`` (at least ``2**c`` slots), -1 if none.
     table : int32[2**bits]
         Hash cells holding slot numbers, -1 when empty.
     """
 
     out_weight: np.ndarray
     out_degree: np.ndarray
-    head: np.ndarray
+    start: np.ndarray
+    cap: np.ndarray
     src: np.ndarray
     dst: np.ndarray
     weight: np.ndarray
-    next: np.ndarray
-    prev: np.ndarray
     table: np.ndarray
+    free_blocks: np.ndarray = field(default_factory=lambda: np.full(32, -1, dtype=np.int32))
     # scalars packed in one array so that kernels can update them in place:
-    # [0] slots ever used (top), [1] free-list head, [2] live edges, [3] hash shift,
+    # [0] slots handed out to blocks (top), [1] unused, [2] live edges, [3] hash shift,
     # [4] live edges whose weight is not 1 (0 lets sweeps skip reading the weights)
     counters: np.ndarray = field(default_factory=lambda: np.array([0, -1, 0, 0, 0], dtype=np.int64))
 
@@ -113,12 +126,11 @@ class DynamicGraph:
         self.arrays = GraphArrays(
             out_weight=np.zeros(node_capacity, dtype=np.float64),
             out_degree=np.zeros(node_capacity, dtype=np.int32),
-            head=np.full(node_capacity, _EMPTY, dtype=np.int32),
+            start=np.zeros(node_capacity, dtype=np.int32),
+            cap=np.zeros(node_capacity, dtype=np.int32),
             src=np.full(edge_capacity, _EMPTY, dtype=np.int32),
             dst=np.full(edge_capacity, _EMPTY, dtype=np.int32),
             weight=np.zeros(edge_capacity, dtype=np.float64),
-            next=np.full(edge_capacity, _EMPTY, dtype=np.int32),
-            prev=np.full(edge_capacity, _EMPTY, dtype=np.int32),
             table=np.full(1 << bits, _EMPTY, dtype=np.int32),
         )
         self.arrays.counters[3] = 64 - bits
@@ -137,7 +149,12 @@ class DynamicGraph:
 
     @property
     def node_capacity(self) -> int:
-        return int(self.arrays.head.shape[0])
+        return int(self.arrays.start.shape[0])
+
+    @property
+    def top(self) -> int:
+        """Slots handed out to blocks so far (live edges plus slack)."""
+        return int(self.arrays.counters[0])
 
     def reserve(self, n_nodes: int, n_new_edges: int) -> bool:
         """Make room for ``n_nodes`` nodes and ``n_new_edges`` more edges.
@@ -150,35 +167,62 @@ class DynamicGraph:
             self._grow_nodes(max(n_nodes, 2 * self.node_capacity))
             grew_nodes = True
         a = self.arrays
-        # slots available = never-used tail plus the free list = capacity - live edges
-        if n_new_edges > a.src.shape[0] - self.n_edges:
-            need = self.n_edges + n_new_edges
-            self._grow_edges(max(need, a.src.shape[0] + a.src.shape[0] // 4))
+        # new edges mostly go into the blocks' slack or into doubled blocks: room for two
+        # slots each at the tail covers the usual case; the kernels report the rest
+        self.reserve_slots(2 * n_new_edges)
         if (self.n_edges + n_new_edges) > MAX_LOAD * a.table.shape[0]:
             self._rehash(self.n_edges + n_new_edges)
         self.n_nodes = max(self.n_nodes, n_nodes)
         return grew_nodes
 
+    def reserve_slots(self, slots: int) -> None:
+        """Make ``slots`` more slots available at the tail of the slot arrays."""
+        a = self.arrays
+        if self.top + slots > a.src.shape[0]:
+            self._grow_edges(max(self.top + slots, a.src.shape[0] + a.src.shape[0] // 4))
+
+    def slots_for(self, degree: np.ndarray) -> np.ndarray:
+        """Block sizes of a bulk load or compaction: the degree plus a quarter, at least 1 for a source."""
+        return degree + degree // 4 + (degree > 0)
+
     def _grow_nodes(self, size: int) -> None:
         a = self.arrays
         a.out_weight = _grown(a.out_weight, size, 0.0)
         a.out_degree = _grown(a.out_degree, size, 0)
-        a.head = _grown(a.head, size, -1)
+        a.start = _grown(a.start, size, 0)
+        a.cap = _grown(a.cap, size, 0)
 
     def _grow_edges(self, size: int) -> None:
         a = self.arrays
         a.src = _grown(a.src, size, -1)
         a.dst = _grown(a.dst, size, -1)
         a.weight = _grown(a.weight, size, 0.0)
-        a.next = _grown(a.next, size, -1)
-        a.prev = _grown(a.prev, size, -1)
+
+    def needs_compaction(self) -> bool:
+        """Slack passed :data:`COMPACT_SLACK` of the stored edges (and the floor)."""
+        return self.top - self.n_edges > max(COMPACT_SLACK * self.n_edges, COMPACT_FLOOR)
+
+    def compact(self) -> None:
+        """Rewrite every block in node order with a quarter of slack; rebuild the hash table (O(edges))."""
+        from .kernels import compact_blocks
+
+        a = self.arrays
+        sizes = self.slots_for(a.out_degree[: self.n_nodes].astype(np.int64))
+        size = max(int(sizes.sum()) + int(sizes.sum()) // 4, 16)
+        src = np.full(size, _EMPTY, dtype=np.int32)
+        dst = np.full(size, _EMPTY, dtype=np.int32)
+        weight = np.zeros(size, dtype=np.float64)
+        compact_blocks(a.start, a.cap, a.out_degree, self.n_nodes, sizes, a.dst, a.weight, src, dst, weight,
+                       a.free_blocks, a.counters)
+        a.src, a.dst, a.weight = src, dst, weight
+        self._rehash(self.n_edges)
 
     def _rehash(self, n_edges: int) -> None:
         a = self.arrays
         bits = _table_bits(int(n_edges / MAX_LOAD) + 1)
         a.table = np.full(1 << bits, _EMPTY, dtype=np.int32)
         a.counters[3] = 64 - bits
-        rebuild_hash(a.table, int(a.counters[3]), a.src, a.dst, int(a.counters[0]))
+        rebuild_hash(a.table, int(a.counters[3]), a.src, a.dst, self.top)
 
     # ------------------------------------------------------------------ views
     def edge_list(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -203,13 +247,13 @@ class DynamicGraph:
     def memory_bytes(self) -> int:
         """Bytes held by the graph arrays (capacity included)."""
         a = self.arrays
-        parts = (a.out_weight, a.out_degree, a.head, a.src, a.dst, a.weight, a.next, a.prev, a.table)
+        parts = (a.out_weight, a.out_degree, a.start, a.cap, a.src, a.dst, a.weight, a.table)
         return int(sum(x.nbytes for x in parts))
 
     def edge_memory_bytes(self) -> int:
         """Bytes of the per-edge arrays (slots and hash cells)."""
         a = self.arrays
-        return int(sum(x.nbytes for x in (a.src, a.dst, a.weight, a.next, a.prev, a.table)))
+        return int(sum(x.nbytes for x in (a.src, a.dst, a.weight, a.table)))
 
 
 def _table_bits(cells: int) -> int:

@@ -102,48 +102,69 @@ def _hash_remove(table, shift, src, dst, cell):
     table[hole] = -1
 
 
-# ---------------------------------------------------------------- edge slots
+# ---------------------------------------------------------------- out-edge blocks
+# Node u's out-edges fill slots start[u] .. start[u] + out_degree[u] - 1 of its block of
+# cap[u] slots (see solver.graph). Free blocks wait in lists by size class c (at least
+# 2**c slots), linked through dst[first slot]; every slot outside a live edge has src -1.
 
 
 @njit(cache=True, inline="always")
-def _alloc_slot(counters, src, nxt):
-    free = counters[1]
-    if free >= 0:
-        counters[1] = nxt[free]
-        return free
-    e = counters[0]
-    counters[0] = e + 1
-    return e
+def _size_class(size):
+    """Largest ``c`` with ``2**c <= size`` (the class a free block of ``size`` slots joins)."""
+    c = 0
+    while (2 << c) <= size:
+        c += 1
+    return c
 
 
 @njit(cache=True, inline="always")
-def _link(head, src, dst, weight, nxt, prv, e, u, v, w):
-    src[e] = u
-    dst[e] = v
-    weight[e] = w
-    first = head[u]
-    nxt[e] = first
-    prv[e] = -1
-    if first >= 0:
-        prv[first] = e
-    head[u] = e
+def _alloc_block(size, free_blocks, counters, capacity, e_dst):
+    """First slot of a free block of ``size`` (a power of two) slots, or -1 when the arrays are full."""
+    c = _size_class(size)
+    b = free_blocks[c]
+    if b >= 0:
+        free_blocks[c] = e_dst[b]
+        e_dst[b] = -1
+        return b
+    top = counters[0]
+    if top + size > capacity:
+        return -1
+    counters[0] = top + size
+    return top
 
 
 @njit(cache=True, inline="always")
-def _unlink(head, src, nxt, prv, counters, e):
-    u = src[e]
-    before = prv[e]
-    after = nxt[e]
-    if before >= 0:
-        nxt[before] = after
-    else:
-        head[u] = after
-    if after >= 0:
-        prv[after] = before
-    src[e] = -1
-    prv[e] = -1
-    nxt[e] = counters[1]
-    counters[1] = e
+def _free_block(b, size, free_blocks, counters, e_dst):
+    if size <= 0:
+        return
+    c = _size_class(size)
+    e_dst[b] = free_blocks[c]
+    free_blocks[c] = b
+
+
+@njit(cache=True, inline="always")
+def _grow_block(u, start, cap, out_degree, e_src, e_dst, e_w, free_blocks, table, counters):
+    """Move u's out-edges to a block twice as large (at least 2 slots); False when no room is left."""
+    old, size = start[u], cap[u]
+    new_size = 2
+    while new_size < 2 * size:
+        new_size *= 2
+    b = _alloc_block(new_size, free_blocks, counters, e_src.shape[0], e_dst)
+    if b < 0:
+        return False
+    shift = counters[3]
+    for j in range(out_degree[u]):
+        y = e_dst[old + j]
+        table[find_cell(table, shift, e_src, e_dst, u, y)] = b + j
+        e_src[b + j] = u
+        e_dst[b + j] = y
+        e_w[b + j] = e_w[old + j]
+        e_src[old + j] = -1
+        e_dst[old + j] = -1
+    _free_block(old, size, free_blocks, counters, e_dst)
+    start[u] = b
+    cap[u] = new_size
+    return True
 
 
 # ---------------------------------------------------------------- repair
@@ -188,7 +209,7 @@ def _repair_rescale(P, R, k, u, v, w_old, w_new, W_old, W_new, a, d, active, n_a
 
 
 @njit(cache=True, inline="always")
-def _repair_neighbours(P, R, k, u, v, w_old, W_old, W_new, head, dst, weight, nxt, a, d,
+def _repair_neighbours(P, R, k, u, v, w_old, W_old, W_new, start, out_degree, dst, weight, a, d,
                        active, n_active, in_active, parked):
     """O(deg u) repair: keep p(u), correct r on each out-neighbour of u.
 
@@ -199,8 +220,8 @@ def _repair_neighbours(P, R, k, u, v, w_old, W_old, W_new, head, dst, weight, nx
     if c == 0.0:
         return
     seen_v = False
-    e = head[u]
-    while e >= 0:
+    first = start[u]
+    for e in range(first, first + out_degree[u]):
         y = dst[e]
         w = weight[e]
         before = 0.0
@@ -210,7 +231,6 @@ def _repair_neighbours(P, R, k, u, v, w_old, W_old, W_new, head, dst, weight, nx
             seen_v = True
         _mark(k, y, R, active, n_active, in_active, parked)
         R[k, y] += c * (w / W_new - before)
-        e = nxt[e]
     if not seen_v and W_old > 0.0:
         # the edge u -> v was removed: its old flow leaves v
         _mark(k, v, R, active, n_active, in_active, parked)
@@ -218,22 +238,20 @@ def _repair_neighbours(P, R, k, u, v, w_old, W_old, W_new, head, dst, weight, nx
 
 
 @njit(cache=True, inline="always")
-def _out_weight_sum(head, e_w, e_next, u):
+def _out_weight_sum(start, out_degree, e_w, u):
     total = 0.0
-    e = head[u]
-    while e >= 0:
+    for e in range(start[u], start[u] + out_degree[u]):
         total += e_w[e]
-        e = e_next[e]
     return total
 
 
 @njit(cache=True, nogil=True)
 def apply_events(
     op, src, dst, wt,
-    head, out_weight, out_degree, e_src, e_dst, e_w, e_next, e_prev, table, counters,
-    P, R, S, a, d, active, n_active, in_active, parked, seed_error, local_max_degree, psum,
+    start, cap, out_weight, out_degree, e_src, e_dst, e_w, free_blocks, table, counters,
+    P, R, S, a, d, active, n_active, in_active, parked, seed_error, local_max_degree, psum, first,
 ):
-    """Apply one batch of events in order and repair every profile.
+    """Apply events ``first ..`` of one batch in order and repair every profile.
 
     Parameters
     ----------
@@ -250,11 +268,15 @@ def apply_events(
     noop : int64
         Number of valid events that changed nothing (delete of a missing edge,
         insert with the weight already present, seed with the same weight).
+    stop : int64
+        ``op.shape[0]`` when every event was applied; else the index of the
+        first event not applied because the slot arrays are full (the caller
+        grows them and calls again from there).
     """
     shift = counters[3]
     n_prof = P.shape[0]
     noop = 0
-    for i in range(op.shape[0]):
+    for i in range(first, op.shape[0]):
         kind = op[i]
         u = src[i]
         v = dst[i]
@@ -283,10 +305,16 @@ def apply_events(
                 counters[4] += int(w_new != 1.0) - int(w_old != 1.0)
             else:
                 w_old = 0.0
-                e = _alloc_slot(counters, e_src, e_next)
-                _link(head, e_src, e_dst, e_w, e_next, e_prev, e, u, v, w_new)
+                deg = out_degree[u]
+                if deg == cap[u] and not _grow_block(u, start, cap, out_degree, e_src, e_dst, e_w,
+                                                     free_blocks, table, counters):
+                    return noop, i
+                e = start[u] + deg
+                e_src[e] = u
+                e_dst[e] = v
+                e_w[e] = w_new
                 _hash_insert(table, shift, u, v, e)
-                out_degree[u] += 1
+                out_degree[u] = deg + 1
                 counters[2] += 1
                 counters[4] += int(w_new != 1.0)
         else:
@@ -297,54 +325,97 @@ def apply_events(
             w_old = e_w[e]
             w_new = 0.0
             _hash_remove(table, shift, e_src, e_dst, cell)
-            _unlink(head, e_src, e_next, e_prev, counters, e)
+            last = start[u] + out_degree[u] - 1
+            if e != last:
+                # the block stays packed: its last edge fills the hole
+                y = e_dst[last]
+                table[find_cell(table, shift, e_src, e_dst, u, y)] = e
+                e_dst[e] = y
+                e_w[e] = e_w[last]
+            e_src[last] = -1
+            e_dst[last] = -1
             out_degree[u] -= 1
             counters[2] -= 1
             counters[4] -= int(w_old != 1.0)
+            if out_degree[u] == 0:
+                _free_block(start[u], cap[u], free_blocks, counters, e_dst)
+                cap[u] = 0
         W_old = out_weight[u]
         W_new = W_old + (w_new - w_old)
         if out_degree[u] == 0 or W_new < 0.0:
             W_new = 0.0  # exact zero for a dangling node, whatever the rounding
         elif W_old > 2.0 * W_new:
             # most of the weight went: W_old - w_old would cancel, so sum what is left
-            W_new = _out_weight_sum(head, e_w, e_next, u)
+            W_new = _out_weight_sum(start, out_degree, e_w, u)
         out_weight[u] = W_new
         # the O(1) rescaling multiplies p(u) by W_new / W_old: only for a moderate ratio,
         # else rounding grows by that factor
         local = out_degree[u] <= local_max_degree or not (0.5 * W_old <= W_new <= 2.0 * W_old)
         for k in range(n_prof):
             if local:
-                _repair_neighbours(P, R, k, u, v, w_old, W_old, W_new, head, e_dst, e_w, e_next,
+                _repair_neighbours(P, R, k, u, v, w_old, W_old, W_new, start, out_degree, e_dst, e_w,
                                    a, d, active, n_active, in_active, parked)
             else:
                 _repair_rescale(P, R, k, u, v, w_old, w_new, W_old, W_new, a, d,
                                 active, n_active, in_active, parked, psum)
-    return noop
+    return noop, op.shape[0]
 
 
 @njit(cache=True, nogil=True)
-def load_edges(src, dst, wt, head, out_weight, out_degree, e_src, e_dst, e_w, e_next, e_prev, table, counters):
-    """Bulk-load distinct edges into an empty graph (slots ``0 .. m-1`` in order).
+def load_edges(src, dst, wt, sizes, start, cap, out_weight, out_degree, e_src, e_dst, e_w, table, counters):
+    """Bulk-load distinct edges into an empty graph: one block of ``sizes[u]`` slots per node, in node order.
 
     The state equals that of inserting them one by one with
-    :func:`apply_events` while every estimate is 0 (no repair is due), at a
-    third of the cost. Returns -1, or the index of the first edge whose pair
-    came before (the caller reports it; the graph is then incomplete).
+    :func:`apply_events` while every estimate is 0 (no repair is due), in far
+    less time. The slot arrays must hold ``sum(sizes)`` slots. Returns -1, or
+    the index of the first edge whose pair came before (the caller reports
+    it; the graph is then incomplete).
     """
     shift = counters[3]
+    top = counters[0]
+    for u in range(sizes.shape[0]):
+        if sizes[u] > 0:
+            start[u] = top
+            cap[u] = sizes[u]
+            top += sizes[u]
+    counters[0] = top
     for i in range(src.shape[0]):
         u = src[i]
         v = dst[i]
         if find_cell(table, shift, e_src, e_dst, u, v) >= 0:
             return i
-        e = _alloc_slot(counters, e_src, e_next)
-        _link(head, e_src, e_dst, e_w, e_next, e_prev, e, u, v, wt[i])
+        e = start[u] + out_degree[u]
+        e_src[e] = u
+        e_dst[e] = v
+        e_w[e] = wt[i]
         _hash_insert(table, shift, u, v, e)
         out_degree[u] += 1
         out_weight[u] += wt[i]
         counters[2] += 1
         counters[4] += int(wt[i] != 1.0)
     return -1
+
+
+@njit(cache=True, nogil=True)
+def compact_blocks(start, cap, out_degree, n, sizes, e_dst, e_w, new_src, new_dst, new_w, free_blocks, counters):
+    """Copy every node's out-edges into blocks of ``sizes[u]`` slots, in node order, in the ``new_`` arrays.
+
+    Drops the slack that relocations and deletions leave; the caller swaps the
+    arrays in and rebuilds the hash table.
+    """
+    top = 0
+    for u in range(n):
+        deg = out_degree[u]
+        old = start[u]
+        start[u] = top
+        cap[u] = sizes[u]
+        for j in range(deg):
+            new_src[top + j] = u
+            new_dst[top + j] = e_dst[old + j]
+            new_w[top + j] = e_w[old + j]
+        top += sizes[u]
+    free_blocks[:] = -1
+    counters[0] = top
 
 
 # ---------------------------------------------------------------- scheduling
@@ -454,7 +525,7 @@ def relist_active(k, R, n, active, n_active, in_active, parked):
 @njit(cache=True, nogil=True)
 def settle_profile(
     k, tol, n, m,
-    head, out_weight, out_degree, e_dst, e_w, e_next,
+    start, out_weight, out_degree, e_dst, e_w,
     P, R, a, d, active, n_active, in_active, parked, queue, in_queue, sweep_share, theta_step,
     push_limit, stats,
 ):
@@ -545,8 +616,7 @@ def settle_profile(
             if W <= 0.0:
                 continue
             scale = d * ru / W
-            e = head[u]
-            while e >= 0:
+            for e in range(start[u], start[u] + out_degree[u]):
                 v = e_dst[e]
                 _mark(k, v, R, active, n_active, in_active, parked)
                 before = R[k, v]
@@ -560,7 +630,6 @@ def settle_profile(
                     if qt == cap:
                         qt = 0
                     pending += 1
-                e = e_next[e]
                 stats[1] += 1
         while pending > 0:
             in_queue[queue[qh]] = False
@@ -650,7 +719,7 @@ def _threshold(S, k, u, alpha, beta):
 @njit(cache=True, nogil=True)
 def push_to_thresholds(
     k, n, m,
-    head, out_weight, out_degree, e_dst, e_w, e_next,
+    start, out_weight, out_degree, e_dst, e_w,
     P, R, S, alpha, beta, a, d, active, n_active, in_active, parked, queue, in_queue, edge_limit, stats, psum,
 ):
     """Forward push, first in first out, until every active ``|r(u)| <= alpha s(u) + beta``.
@@ -704,8 +773,7 @@ def push_to_thresholds(
         if W <= 0.0:
             continue
         scale = d * ru / W
-        e = head[u]
-        while e >= 0:
+        for e in range(start[u], start[u] + out_degree[u]):
             v = e_dst[e]
             _mark(k, v, R, active, n_active, in_active, parked)
             after = R[k, v] + scale * e_w[e]
@@ -717,7 +785,6 @@ def push_to_thresholds(
                 if qt == cap:
                     qt = 0
                 pending += 1
-            e = e_next[e]
         touched += out_degree[u]
         if touched > edge_limit:
             handover = True

@@ -20,7 +20,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from .bounds import CERTIFIED_TOP
+from .bounds import CERTIFIED_TOP, Certificate
 from .engine import GLOBAL, RTOL, Engine, SettleStats
 from .ids import NodeIds
 from .kernels import OP_DELETE, OP_INSERT, OP_SEED
@@ -146,6 +146,10 @@ class Ranker:
     def settle(self) -> SettleStats:
         """Push every profile to the tolerance."""
         return self.engine.settle()
+
+    def certificate(self, profile: str = GLOBAL) -> Certificate:
+        """Published scores of ``profile`` with each node's certified bound (in node id order)."""
+        return self.engine.certificate(profile)
 
     def certified_bound(self, profile: str = GLOBAL) -> float:
         return self.engine.certified_bound(profile)
