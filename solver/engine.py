@@ -381,6 +381,8 @@ class Engine:
     def _sum_shift(self, k: int) -> float:
         """``||r_k||_1 / sum p_k``: how far the normalisation may move (``inf`` before any estimate)."""
         r1 = kernels.active_l1(k, self.R, self._active, self._n_active, self._parked)
+        if r1 == 0.0:
+            return 0.0  # an exact estimate, or an empty profile: nothing can shift
         s_p = self._psum[k]
         return r1 / s_p if s_p > r1 else np.inf
 
