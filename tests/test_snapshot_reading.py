@@ -218,3 +218,19 @@ def test_residual_drift_figures() -> None:
     assert residual_drift(0.0, 1e-15) == (1e-15, None)
     assert residual_drift(DRIFT_FLOOR, 2 * DRIFT_FLOOR) == (DRIFT_FLOOR, None)
     assert residual_drift(float("inf"), 1e-3) == (None, None)  # the manifest states no L1 bound (null)
+
+
+def test_replay_from_a_root_starts_at_its_newest_valid_snapshot(series, tmp_path: Path) -> None:
+    root, snaps = series
+    _flip(snaps[-1] / "scores.parquet")
+    log = tmp_path / "events.jsonl"
+    proc = _cli("replay", str(log), "--out", str(root), "--from", str(root), "--quiet")
+    assert proc.returncode == 0, proc.stderr
+    assert f"skipping {snaps[-1].name}" in proc.stderr and "sha256" in proc.stderr
+    new = json.loads((root / "snap-00000004" / "manifest.json").read_text())
+    start = json.loads((snaps[-2] / "manifest.json").read_text())
+    # it went on from snap-2 (2,000 records) to the end of the log: 2,500 records, each once
+    assert start["events_applied"] + start["events_rejected"] == 2_000
+    assert new["events_applied"] + new["events_rejected"] == 2_500
+    # the same graph as the damaged snapshot, whose edges file is intact (files are sorted, so equal bytes)
+    assert (root / "snap-00000004" / "edges.parquet").read_bytes() == (snaps[-1] / "edges.parquet").read_bytes()
