@@ -296,5 +296,9 @@ def run_audit(root: Path, snapshot: str | None, every: bool, k: int, as_json: bo
         elif results:
             emit_json({**results[0], "skipped": skipped})
     if plot is not None and results:
-        print(f"plot: {plot_series(results, plot)}", file=sys.stderr)
+        try:
+            print(f"plot: {plot_series(results, plot)}", file=sys.stderr)
+        except OSError as exc:
+            print(f"ranktide audit: error: cannot write the picture {plot}: {exc.strerror or exc}", file=sys.stderr)
+            return 3
     return 1 if failed else 0

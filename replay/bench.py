@@ -33,7 +33,8 @@ machine), :mod:`bench_workloads` (generated graph, bulk load, update
 batches), :mod:`bench_contenders` (SciPy, NetworkX, igraph),
 :mod:`bench_engine` (update batches, throughput, profiles, snapshots, real
 graph), :mod:`bench_end_to_end` (replay floor, service on a local broker) and
-:mod:`bench_report` (tables, plot). This module holds the options and
+:mod:`bench_report` (tables, plot); the options are in :mod:`bench_options`
+(imported alone by the command line's parser). This module holds
 :func:`run_bench`, the entry point of the command.
 """
 
@@ -48,6 +49,8 @@ from pathlib import Path
 
 import numpy as np
 
+from ranktide.replay.bench_contenders import INSTALL_EXTRAS, LABELS, missing_contenders
+from ranktide.replay.bench_options import add_bench_options  # noqa: F401 - the command's options live there
 from ranktide.replay.bench_common import (
     BACKLOG_BATCHES, DAMPING, E2E_EVENTS, HEADLINE_BATCH, INSERT_SHARE, REFERENCE_TOL, SIZES,
     THROUGHPUT_BATCHES, TOLERANCE, _finite_or_none, _peak_rss_bytes, _say, machine_info,
@@ -60,43 +63,6 @@ from ranktide.replay.bench_engine import (
 )
 from ranktide.replay.bench_report import render, write_plot
 from ranktide.replay.bench_workloads import EdgeSet, generated, load_graph, warm_up_kernels
-
-
-# ====================================================================== options
-
-
-def _batch_list(text: str) -> list[int]:
-    try:
-        sizes = [int(x) for x in text.split(",") if x.strip()]
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected comma-separated batch sizes, got {text!r}") from None
-    if not sizes or min(sizes) < 1:
-        raise argparse.ArgumentTypeError(f"batch sizes must be integers >= 1, got {text!r}")
-    return sorted(set(sizes))
-
-
-def _positive_int(text: str) -> int:
-    value = int(text)
-    if value < 1:
-        raise argparse.ArgumentTypeError(f"must be an integer >= 1, got {text}")
-    return value
-
-
-def add_bench_options(p: argparse.ArgumentParser) -> None:
-    """Options of ``ranktide bench``."""
-    p.add_argument("--size", choices=list(SIZES), default="medium",
-                   help="generated graph: small ~20k nodes/200k edges, medium ~200k/2M (default), "
-                        "large ~1M/10M; tiny ~2k/20k is for smoke tests")
-    p.add_argument("--json", action="store_true", help="print one JSON object instead of tables")
-    p.add_argument("--plot", type=Path, metavar="FILE.png",
-                   help="write a log-log plot of time per event against batch size")
-    p.add_argument("--batches", type=_batch_list, default=[1, 10, 100, 1_000, 10_000],
-                   help="update batch sizes, comma-separated (default 1,10,100,1000,10000)")
-    p.add_argument("--repeats", type=_positive_int, default=3, help="batches measured per batch size (default 3)")
-    p.add_argument("--seed", type=int, default=0, help="seed of the generated graph and events (default 0)")
-    p.add_argument("--skip-e2e", action="store_true", help="skip the end-to-end run through a local Kafka broker")
-    p.add_argument("--profiles", type=int, default=2,
-                   help="personalization profiles in the personalized stream (default 2; 0 skips it)")
 
 
 # ====================================================================== the whole bench
@@ -115,6 +81,11 @@ def run_all(args: argparse.Namespace, folder: Path) -> dict:
         "size": args.size, "batches": args.batches, "repeats": args.repeats, "seed": args.seed,
         "profiles": args.profiles, "damping": DAMPING, "tolerance": TOLERANCE, "reference_tolerance": REFERENCE_TOL,
         "networkx_tol": "(1 - damping) * 1e-6 / N", "insert_share": INSERT_SHARE}}
+    missing = missing_contenders()
+    report["missing_contenders"] = {name: f"{module} is not installed: {INSTALL_EXTRAS}"
+                                    for name, module in missing.items()}
+    for name, module in missing.items():
+        _say(f"skipping {LABELS[name]}: {module} is not installed (install the bench extras: {INSTALL_EXTRAS})")
     _say("compiling kernels on a small graph")
     report["settings"]["kernel_warm_up_seconds"] = warm_up_kernels()
     _say(f"generating the {args.size} graph")
@@ -125,11 +96,11 @@ def run_all(args: argparse.Namespace, folder: Path) -> dict:
     report["load"] = loaded.info
     report["load"]["reserved_edge_room"] = reserve_for(loaded, args.batches, args.repeats)
     tr = start_tracker(loaded, args.seed)
-    report["batches"] = run_batches(tr, args.batches, args.repeats, contenders_for(args.size), ["global"],
+    report["batches"] = run_batches(tr, args.batches, args.repeats, contenders_for(args.size, missing), ["global"],
                                     f"update batches ({args.size})")
     micro, settle_interval = ServiceConfig().micro_batch, ServiceConfig().settle_interval
-    report["per_node"] = measure_per_node(loaded, args.batches, args.repeats, args.seed,
-                                          [c for c in contenders_for(args.size) if c in ("igraph_prpack", "networkx")],
+    outside = [c for c in contenders_for(args.size, missing) if c in ("igraph_prpack", "networkx")]
+    report["per_node"] = measure_per_node(loaded, args.batches, args.repeats, args.seed, outside,
                                           micro, BACKLOG_BATCHES[args.size], settle_interval)
     report["scaling"] = {args.size: _scaling_rows(report["batches"])}
     if args.size == "large":
@@ -151,7 +122,7 @@ def run_all(args: argparse.Namespace, folder: Path) -> dict:
     del tr, loaded
     report["replay"] = measure_replay(src0, dst0, folder)
     _say("bundled real graph")
-    report["real_graph"] = measure_real_graph(args.repeats, args.seed)
+    report["real_graph"] = measure_real_graph(args.repeats, args.seed, missing)
     if args.skip_e2e:
         report["end_to_end"] = {"skipped": "--skip-e2e"}
     else:

@@ -19,15 +19,8 @@ from typing import Callable
 
 import numpy as np
 
+from ranktide.replay.bench_options import SIZES  # noqa: F401 - defined with the options the parser needs
 
-
-#: Graph sizes (nodes, edges). ``tiny`` is for smoke tests.
-SIZES = {
-    "tiny": (2_000, 20_000),
-    "small": (20_000, 200_000),
-    "medium": (200_000, 2_000_000),
-    "large": (1_000_000, 10_000_000),
-}
 #: Messages produced for the end-to-end run, per size.
 E2E_EVENTS = {"tiny": 20_000, "small": 100_000, "medium": 300_000, "large": 1_000_000}
 #: Micro-batches in the engine throughput stream, per size.

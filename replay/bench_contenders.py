@@ -96,6 +96,25 @@ def igraph_prpack(ctx: Context) -> Measure:
     return Measure(t, np.asarray(result, dtype=np.float64), None, None, prep)
 
 
+#: Contenders that need a bench extra: name -> the module they import.
+OPTIONAL = {"networkx": "networkx", "igraph_prpack": "igraph"}
+#: How to install the bench extras (from a clone of the repository).
+INSTALL_EXTRAS = "python3 -m pip install -e '.[bench]'"
+
+
+def missing_contenders() -> dict[str, str]:
+    """Contenders whose library cannot be imported: name -> the module that is missing."""
+    import importlib
+
+    missing = {}
+    for name, module in OPTIONAL.items():
+        try:
+            importlib.import_module(module)
+        except ImportError:
+            missing[name] = module
+    return missing
+
+
 CONTENDERS: dict[str, Callable[[Context], Measure]] = {
     "warm_start": warm_start,
     "warm_start_own": warm_start,

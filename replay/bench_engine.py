@@ -309,14 +309,20 @@ def measure_snapshot(eng: Engine, root: Path) -> tuple[dict, Path]:
 # ====================================================================== real graph
 
 
-def measure_real_graph(repeats: int, seed: int) -> dict:
-    """The bundled real graph through the same contenders (small batches)."""
-    g = bundled_real_graph()
+def measure_real_graph(repeats: int, seed: int, missing: dict[str, str] | None = None) -> dict:
+    """The bundled real graph through the same installed contenders (small batches)."""
+    from ranktide.replay.bench_contenders import INSTALL_EXTRAS
+
+    try:
+        g = bundled_real_graph()
+    except ImportError as exc:
+        return {"skipped": f"no real graph: neither onadata nor NetworkX is installed ({exc}); {INSTALL_EXTRAS}"}
     uniform = PowerLawSampler(g.n, np.arange(1, g.n + 1, dtype=np.float64), np.arange(1, g.n + 1, dtype=np.float64))
     loaded = load_graph(g.n, g.src, g.dst, g.weight, uniform)
     tr = start_tracker(loaded, seed)
     sizes = [b for b in REAL_GRAPH_BATCHES if 5 * b <= g.src.size]
-    rows = run_batches(tr, sizes, repeats, list(CONTENDERS), ["global"], "real graph")
+    rows = run_batches(tr, sizes, repeats, [n for n in CONTENDERS if n not in (missing or {})], ["global"],
+                       "real graph")
     return {"name": g.name, "description": g.description, "load": loaded.info, "batches": rows,
             "note": "the largest real graph found inside a registry package: onadata 0.1 (PyPI) ships the "
                     "Wikipedia vote network; without that package the bench falls back to NetworkX's "
@@ -324,10 +330,11 @@ def measure_real_graph(repeats: int, seed: int) -> dict:
 
 
 
-def contenders_for(size: str) -> list[str]:
-    """NetworkX only on tiny and small graphs."""
+def contenders_for(size: str, missing: dict[str, str] | None = None) -> list[str]:
+    """NetworkX only on tiny and small graphs; none whose library is ``missing``."""
     names = ["warm_start", "warm_start_own", "cold_start", "igraph_prpack"]
-    return names + ["networkx"] if size in ("tiny", "small") else names
+    names = names + ["networkx"] if size in ("tiny", "small") else names
+    return [n for n in names if n not in (missing or {})]
 
 
 def scaling_run(size: str, sizes: list[int], repeats: int, seed: int) -> list[dict]:

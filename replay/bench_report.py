@@ -202,6 +202,8 @@ def _e2e_lines(e: dict) -> list[str]:
 
 
 def _real_lines(r: dict) -> list[str]:
+    if "skipped" in r:
+        return [f"Real graph: skipped, {r['skipped']}."]
     names = _present(r["batches"])
     heads = ["events/batch"] + [LABELS[n] for n in ["ranktide"] + names] + ["ranktide error", "ranktide bound"]
     rows = [[f"{b['batch']:,}"] + [_fmt_time(b[n]["seconds_per_batch"]) for n in ["ranktide"] + names]
@@ -254,6 +256,7 @@ def render(report: dict) -> str:
         f"NetworkX with tol = (1-d)*1e-6/N; kernels compiled beforehand ({_fmt_time(s['kernel_warm_up_seconds'])})",
         "",
     ]
+    out += [f"Not measured: {LABELS[name]} ({why})" for name, why in report.get("missing_contenders", {}).items()]
     out += _graph_lines(report) + [""]
     out += [f"Update batches of mixed events (80 % inserts of new edges drawn like the graph's, 20 % deletes of "
             f"present edges, shuffled) on the {s['size']} graph", ""]

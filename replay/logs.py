@@ -314,14 +314,81 @@ def _from_row(batches, start_row: int) -> Iterator[tuple[int, pa.Table]]:
 
 
 def _read_csv(path: Path, limits: Limits, start_row: int, batch_rows: int) -> Iterator[LogChunk]:
+    """CSV rows in chunks; a row with the wrong number of cells is rejected with its line, not fatal.
+
+    Row numbers (the positions) count every data row, malformed ones included:
+    row ``r`` is line ``r + 2`` (the header is line 1).
+    """
     types = {name: pa.string() for name in FIELDS}
+    bad: list[tuple[int, str, str]] = []  # (line, reason, text) of malformed rows, in file order
+
+    def malformed(row) -> str:
+        bad.append((int(row.number), f"expected {row.expected_columns} columns, got {row.actual_columns}", row.text))
+        return "skip"
+
     reader = pcsv.open_csv(
         path,
-        read_options=pcsv.ReadOptions(block_size=1 << 22),
+        # one thread: the parser then numbers the malformed rows it hands to the handler
+        read_options=pcsv.ReadOptions(block_size=1 << 22, use_threads=False),
+        parse_options=pcsv.ParseOptions(invalid_row_handler=malformed),
         convert_options=pcsv.ConvertOptions(column_types=types, strings_can_be_null=True),
     )
     if "op" not in reader.schema.names:
         raise LogError(f"{path}: a CSV log needs the header op,src,dst,weight,ts (has {reader.schema.names})")
-    for row, table in _from_row(reader, start_row):
-        # line numbers count the header line
-        yield _table_chunk(table, row, limits, first_line=row + 2)
+    next_line = 2
+    for rb in reader:
+        chunk, next_line = _csv_chunk(pa.Table.from_batches([rb]), bad, next_line, limits)
+        if chunk is not None:
+            yield from _from_csv_row(chunk, start_row)
+    chunk, _ = _csv_chunk(pa.Table.from_batches([], reader.schema), bad, next_line, limits, final=True)
+    if chunk is not None:
+        yield from _from_csv_row(chunk, start_row)
+
+
+def _from_csv_row(chunk: LogChunk, start_row: int) -> Iterator[LogChunk]:
+    """The chunk without rows before ``start_row`` (a resumed replay), if anything is left."""
+    if chunk.offsets.size and chunk.offsets[0] < start_row:
+        keep = chunk.offsets >= start_row
+        if not keep.any():
+            return
+        chunk = chunk.select(keep)
+    yield chunk
+
+
+def _csv_chunk(table: pa.Table, bad: list[tuple[int, str, str]], next_line: int, limits: Limits,
+               final: bool = False) -> tuple[LogChunk | None, int]:
+    """Well-formed rows of ``table`` merged, in line order, with the malformed rows among them.
+
+    ``bad`` holds the malformed rows the parser has met so far; those before
+    the table's last row (all of them when ``final``) are taken out of it.
+    Returns the chunk (None when empty) and the line after it.
+    """
+    n = table.num_rows
+    bad_lines = np.array([b[0] for b in bad], dtype=np.int64)
+    # well-formed rows sit on the lines, from next_line on, that no malformed row holds
+    candidates = next_line + np.arange(n + bad_lines.size, dtype=np.int64)
+    good_lines = candidates[~np.isin(candidates, bad_lines)][:n]
+    last = int(good_lines[-1]) if n else next_line - 1
+    taken = bad_lines.size if final else int(np.searchsorted(bad_lines, last))
+    if n == 0 and taken == 0:
+        return None, next_line
+    mine, bad[:taken] = bad[:taken], []
+    lines = np.concatenate((good_lines, bad_lines[:taken]))
+    order = np.argsort(lines, kind="stable")
+    position = np.empty_like(order)
+    position[order] = np.arange(order.size)  # merged place of each good row, then of each malformed row
+    good = _table_chunk(table, 0, limits, first_line=0).parsed
+    rejected = np.concatenate((position[good.rejected_rows], position[n:])).astype(np.int64)
+    reasons = good.reasons + [reason for _, reason, _ in mine]
+    by_row = np.argsort(rejected, kind="stable")
+    parsed = Parsed(good.batch, position[good.valid_rows].astype(np.int64), rejected[by_row],
+                    [reasons[i] for i in by_row])
+    texts = [text for _, _, text in mine]
+
+    def raw(i: int) -> str:
+        k = int(order[i])
+        return json.dumps(table.slice(k, 1).to_pylist()[0], default=str) if k < n else texts[k - n]
+
+    sorted_lines = lines[order]
+    end = max(int(sorted_lines[-1]) + 1, next_line)
+    return LogChunk(parsed, sorted_lines, sorted_lines - 2, end - 2, end - 2, raw), end

@@ -22,11 +22,7 @@ import sys
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Callable
-
-import pyarrow as pa
-import pyarrow.compute as pc
-import pyarrow.parquet as pq
+from typing import TYPE_CHECKING, Callable
 
 from ranktide.stream.snapshots import (
     SnapshotError,
@@ -36,6 +32,11 @@ from ranktide.stream.snapshots import (
     select_snapshot,
     snapshot_dirs,
 )
+
+if TYPE_CHECKING:
+    # pyarrow is imported by the functions that read Parquet, not at start-up: status,
+    # snapshots and the checksums need none of it
+    import pyarrow as pa
 
 
 # ------------------------------------------------------------------ records and their rendering
@@ -267,6 +268,10 @@ def list_snapshots(root: Path, as_json: bool = False) -> int:
 
 def _profile_scores(chosen: Selected, profile: str) -> pa.Table:
     """The rows of one profile in the served snapshot's scores.parquet."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+    import pyarrow.parquet as pq
+
     try:
         table = pq.read_table(chosen.path / "scores.parquet")
     except (OSError, pa.ArrowException) as exc:
@@ -280,6 +285,8 @@ def _profile_scores(chosen: Selected, profile: str) -> pa.Table:
 
 def top_records(part: pa.Table, k: int) -> list[dict]:
     """The ``k`` best-scored nodes of one profile: rank, node, score (ties by node name)."""
+    import pyarrow.compute as pc
+
     order = pc.sort_indices(part, sort_keys=[("score", "descending"), ("node", "ascending")])
     best = part.take(order[:k])
     return [{"rank": i, "node": n, "score": s}
@@ -288,6 +295,9 @@ def top_records(part: pa.Table, k: int) -> list[dict]:
 
 def score_records(part: pa.Table, nodes: list[str]) -> list[dict]:
     """Node and score of each named node, in the order given (score None: unknown node)."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
     found = part.filter(pc.is_in(part["node"], value_set=pa.array(nodes, pa.string())))
     by_node = dict(zip(found["node"].to_pylist(), found["score"].to_pylist()))
     return [{"node": n, "score": by_node.get(n)} for n in nodes]

@@ -25,7 +25,7 @@ from pathlib import Path
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from ranktide.stream.sources import ARROW_CONTENT_TYPE, _is_arrow, parse_kafka_url
+from ranktide.stream.sources import ARROW_CONTENT_TYPE, _is_arrow, kafka_config, parse_kafka_url, wait_for_brokers
 
 log = logging.getLogger("ranktide.record")
 
@@ -57,15 +57,27 @@ def _assign_all(consumer, topics: list[str], timeout: float) -> dict[tuple[str, 
 
 
 def record_topic(url: str, out: Path, until_end: bool, properties: dict[str, str] | None = None,
-                 rows_per_group: int = 100_000, progress: bool = False) -> int:
-    """Copy the topics of ``url`` into ``out``; return how many messages were written."""
+                 rows_per_group: int = 100_000, progress: bool = False, connect_timeout: float = 30.0) -> int:
+    """Copy the topics of ``url`` into ``out``; return how many messages were written.
+
+    Raises
+    ------
+    SourceError
+        When the brokers do not answer within ``connect_timeout`` seconds.
+    OutputError
+        When ``out`` cannot be written.
+    """
     from confluent_kafka import Consumer, KafkaError
 
+    from ranktide.stream.snapshots import check_writable
+
     bootstrap, topics = parse_kafka_url(url)
-    consumer = Consumer({
-        "bootstrap.servers": bootstrap, "group.id": f"ranktide-record-{uuid.uuid4().hex[:8]}",
-        "enable.auto.commit": False, "enable.partition.eof": True, **(properties or {}),
-    })
+    check_writable(Path(out).parent, "recording", out)
+    wait_for_brokers(bootstrap, properties or {}, connect_timeout)
+    consumer = Consumer(kafka_config(bootstrap, properties or {}, **{
+        "group.id": f"ranktide-record-{uuid.uuid4().hex[:8]}",
+        "enable.auto.commit": False, "enable.partition.eof": True,
+    }))
     stop = {"now": False}
     signal.signal(signal.SIGINT, lambda *_: stop.update(now=True))
     signal.signal(signal.SIGTERM, lambda *_: stop.update(now=True))
@@ -123,9 +135,16 @@ def _append(rows: dict[str, list], msg) -> None:
 
 def run_record(args) -> int:
     """The ``ranktide record`` command."""
+    from ranktide.stream.snapshots import OutputError
+
     started = time.perf_counter()
+    timeout = args.connect_timeout or float(os.environ.get("RANKTIDE_CONNECT_TIMEOUT", "30"))
     try:
-        count = record_topic(args.source, args.out, args.until_end, progress=sys.stderr.isatty())
+        count = record_topic(args.source, args.out, args.until_end, progress=sys.stderr.isatty(),
+                             connect_timeout=timeout)
+    except (OutputError, OSError) as exc:
+        print(f"ranktide record: error: {exc}", file=sys.stderr)
+        return 3
     except (RuntimeError, ValueError) as exc:
         print(f"ranktide record: error: {exc}", file=sys.stderr)
         return 2

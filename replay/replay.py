@@ -13,7 +13,8 @@ from ranktide.stream.events import Limits
 import numpy as np
 
 from ranktide.stream.rootlock import RootLock
-from ranktide.stream.snapshots import Counters, SnapshotError, load_snapshot, select_snapshot, snapshot_dirs, write_snapshot
+from ranktide.stream.snapshots import (Counters, OutputError, SnapshotError, load_snapshot, select_snapshot,
+                                       snapshot_dirs, write_snapshot)
 
 from .logs import LogChunk, LogError, read_log, row_count_hint
 
@@ -136,6 +137,13 @@ class RejectsWriter:
         p = chunk.parsed
         if not p.reasons:
             return
+        try:
+            self._write(chunk, upto)
+        except OSError as exc:
+            raise OutputError(f"cannot write the rejects file {self.path}: {exc.strerror or exc}") from exc
+
+    def _write(self, chunk: LogChunk, upto: int | None) -> None:
+        p = chunk.parsed
         if self._fh is None:
             self.path.parent.mkdir(parents=True, exist_ok=True)
             self._fh = open(self.path, "a", encoding="utf-8")
@@ -154,8 +162,11 @@ class RejectsWriter:
 
     def close(self) -> None:
         if self._fh is not None:
-            self._fh.close()
-            self._fh = None
+            fh, self._fh = self._fh, None
+            try:
+                fh.close()
+            except OSError as exc:
+                raise OutputError(f"cannot write the rejects file {self.path}: {exc.strerror or exc}") from exc
 
 
 def apply_events(ranker: Ranker, batch: EventBatch, counters: Counters, micro_batch: int | None) -> None:

@@ -20,6 +20,57 @@ snapshots. Events are JSON objects such as
 """
 
 
+LOG_LEVELS = ("DEBUG", "INFO", "WARNING", "ERROR")
+LOG_LEVEL_HELP = "logging level: DEBUG, INFO, WARNING or ERROR (default INFO)"
+
+
+class _Parser(argparse.ArgumentParser):
+    """An argument parser whose errors are one line on stderr (exit 2), with a pointer to --help."""
+
+    def error(self, message: str):  # noqa: D102 - argparse's hook
+        self.exit(2, f"{self.prog}: error: {message} (see {self.prog} --help)\n")
+
+
+class _Version(argparse.Action):
+    """``--version``: the installed version, looked up only when asked."""
+
+    def __init__(self, option_strings, dest, **kwargs) -> None:
+        super().__init__(option_strings, dest, nargs=0, default=argparse.SUPPRESS, **kwargs)
+
+    def __call__(self, parser, namespace, values, option_string=None) -> None:
+        from importlib.metadata import PackageNotFoundError, version
+
+        try:
+            text = version("ranktide")
+        except PackageNotFoundError:
+            text = "unknown (not installed)"
+        print(f"ranktide {text}")
+        parser.exit(0)
+
+
+def _log_level(text: str) -> str:
+    if text.upper() not in LOG_LEVELS:
+        raise argparse.ArgumentTypeError(f"expected one of {', '.join(LOG_LEVELS)}, got {text!r}")
+    return text.upper()
+
+
+def _count(text: str) -> int:
+    if not text.strip().lstrip("+").isdigit():
+        raise argparse.ArgumentTypeError(f"must be a whole number >= 0, got {text!r}")
+    return int(text)
+
+
+def _address(text: str) -> str:
+    from ranktide.stream.config import parse_address
+
+    if text:
+        try:
+            parse_address(text)
+        except ValueError as exc:
+            raise argparse.ArgumentTypeError(f"{exc}; '' disables the endpoint") from None
+    return text
+
+
 def _until(text: str) -> int | float:
     """A line/row number (digits) or an ISO-8601 time (returned in ms since the epoch)."""
     if text.isdigit():
@@ -40,9 +91,12 @@ def _pace(text: str) -> float:
 
 
 def _positive_float(text: str) -> float:
-    value = float(text)
+    try:
+        value = float(text)
+    except ValueError:
+        value = math.nan
     if not (value > 0 and math.isfinite(value)):
-        raise argparse.ArgumentTypeError(f"must be a finite number > 0, got {text}")
+        raise argparse.ArgumentTypeError(f"must be a finite number > 0, got {text!r}")
     return value
 
 
@@ -74,9 +128,12 @@ def _positive_int(text: str) -> int:
 
 
 def _damping(text: str) -> float:
-    value = float(text)
+    try:
+        value = float(text)
+    except ValueError:
+        value = math.nan
     if not 0 < value < 1:
-        raise argparse.ArgumentTypeError(f"damping must lie strictly between 0 and 1, got {text}")
+        raise argparse.ArgumentTypeError(f"must lie strictly between 0 and 1, got {text!r}")
     return value
 
 
@@ -116,7 +173,7 @@ def _targets(args: argparse.Namespace) -> dict | None:
 def _cmd_replay(args: argparse.Namespace) -> int:
     from ranktide.replay.logs import LogError
     from ranktide.replay.replay import ReplayOptions, replay_log
-    from ranktide.stream.snapshots import SnapshotError
+    from ranktide.stream.snapshots import OutputError, SnapshotError, check_writable
 
     given = [args.damping, args.rtol, args.tolerance, args.certified_top]
     if args.from_snapshot is not None and any(x is not None for x in given):
@@ -143,7 +200,11 @@ def _cmd_replay(args: argparse.Namespace) -> int:
         snapshot_every=args.snapshot_every,
     )
     try:
+        check_writable(args.out, "snapshot root")  # before reading the log
         summary = replay_log(args.log, args.out, options)
+    except OutputError as exc:
+        print(f"ranktide replay: error: {exc}", file=sys.stderr)
+        return 3
     except (LogError, SnapshotError) as exc:
         print(f"ranktide replay: error: {exc}", file=sys.stderr)
         return 2
@@ -177,17 +238,19 @@ def _cmd_run(args: argparse.Namespace) -> int:
     from ranktide.replay.logs import LogError
     from ranktide.stream.config import ConfigError, load_config
     from ranktide.stream.service import Service
-    from ranktide.stream.snapshots import SnapshotError
+    from ranktide.stream.sources import SourceError
+    from ranktide.stream.snapshots import OutputError, SnapshotError
 
     overrides = {
         "source": args.source, "out": args.out, "group": args.group, "owner_topic": args.owner_topic,
         "tolerance": args.tolerance, "rtol": args.rtol, "certified_top": args.certified_top,
         "damping": args.damping, "snapshot_interval": args.snapshot_interval,
         "keep_snapshots": args.keep_snapshots, "micro_batch": args.micro_batch,
-        "rejects": f"kafka:{args.rejects_topic}" if args.rejects_topic else (f"file:{args.rejects}" if args.rejects else None),
+        "rejects": f"kafka:{args.rejects_topic}" if args.rejects_topic else _rejects_target(args.rejects),
         "score_topic": args.score_topic, "metrics": args.metrics,
         "log_format": "json" if args.log_json else None, "stop_at_end": True if args.stop_at_end else None,
         "max_id_length": args.max_id_length, "max_message_bytes": args.max_message_bytes,
+        "connect_timeout": args.connect_timeout,
     }
     if args.personalization:
         overrides["personalizations"] = {k: str(v) for k, v in args.personalization}
@@ -205,7 +268,10 @@ def _cmd_run(args: argparse.Namespace) -> int:
     service.install_signal_handlers()
     try:
         code = service.run()
-    except (LogError, SnapshotError) as exc:
+    except OutputError as exc:
+        print(f"ranktide run: error: {exc}", file=sys.stderr)
+        return 3
+    except (LogError, SnapshotError, SourceError) as exc:
         print(f"ranktide run: error: {exc}", file=sys.stderr)
         return 2
     if code == 0 and not args.quiet:
@@ -213,6 +279,13 @@ def _cmd_run(args: argparse.Namespace) -> int:
 
         describe_newest(Path(cfg.out), command="run")
     return code
+
+
+def _rejects_target(text: str | None) -> str | None:
+    """``--rejects``: PATH, file:PATH or kafka:TOPIC, as the configuration key takes it."""
+    if not text:
+        return None
+    return text if text.startswith(("file:", "kafka:")) else f"file:{text}"
 
 
 def _embedded_default(args: argparse.Namespace) -> dict:
@@ -315,14 +388,30 @@ def _cmd_record(args: argparse.Namespace) -> int:
 
 def _cmd_audit(args: argparse.Namespace) -> int:
     from ranktide.replay.audit import run_audit
+    from ranktide.stream.snapshots import OutputError, check_writable
 
+    if args.plot is not None:
+        try:
+            check_writable(args.plot.parent, "picture", args.plot)  # before the recompute
+        except OutputError as exc:
+            print(f"ranktide audit: error: {exc}", file=sys.stderr)
+            return 3
     return run_audit(args.root, args.snapshot, args.all, args.k, args.json, args.plot)
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:
     from ranktide.replay.demo import run_demo
+    from ranktide.stream.snapshots import OutputError, check_writable
 
-    return run_demo(args.out)
+    try:
+        check_writable(args.out, "demo folder")
+        return run_demo(args.out)
+    except OutputError as exc:
+        print(f"ranktide demo: error: {exc}", file=sys.stderr)
+        return 3
+    except OSError as exc:  # everything the demo reads it has written itself
+        print(f"ranktide demo: error: cannot write {exc.filename or args.out}: {exc.strerror or exc}", file=sys.stderr)
+        return 3
 
 
 def _cmd_bench(args: argparse.Namespace) -> int:
@@ -332,23 +421,28 @@ def _cmd_bench(args: argparse.Namespace) -> int:
 
 
 def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(
+    parser = _Parser(
         prog="ranktide", description=DESCRIPTION, formatter_class=argparse.RawDescriptionHelpFormatter
     )
-    parser.add_argument("--log-level", default="INFO", help="logging level (DEBUG, INFO, WARNING, ERROR; default INFO)")
-    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+    parser.add_argument("--log-level", type=_log_level, default="INFO", metavar="LEVEL",
+                        help=LOG_LEVEL_HELP)
+    parser.add_argument("--version", action=_Version, help="print the installed version and exit")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND", parser_class=_Parser)
 
-    p = sub.add_parser("replay", help="replay a recorded event log into a snapshot",
-                       description="Replay a JSON Lines, CSV or Parquet event log from an empty graph and "
-                                   "write one snapshot under ROOT. Malformed records go to ROOT/rejects.jsonl "
-                                   "with their line and reason; they never stop the run.")
+    p = sub.add_parser("replay", help="replay a recorded event log into a snapshot, or a series of them",
+                       description="Replay a JSON Lines, CSV or Parquet event log from an empty graph (or from a "
+                                   "snapshot, --from) and write a snapshot under ROOT at its end; with "
+                                   "--snapshot-every N also one after every N records, leaving a series "
+                                   "snap-00000001, snap-00000002, ... that audit --all and --plot read. Malformed "
+                                   "records go to ROOT/rejects.jsonl with their line and reason; they never stop "
+                                   "the run.")
     p.add_argument("log", type=Path, help="event log (.jsonl, .csv or .parquet)")
     p.add_argument("--out", type=Path, required=True, metavar="ROOT", help="snapshot root folder")
     add_engine_options(p)
     p.add_argument("--personalization", action="append", type=_personalization, metavar="NAME=SEEDS_FILE",
                    help="add a personalized profile seeded from a file (one node per line, optionally "
                         "node,weight); may be repeated")
-    p.add_argument("--micro-batch", type=int, default=None, metavar="N",
+    p.add_argument("--micro-batch", type=_positive_int, default=None, metavar="N",
                    help="settle after every N events, as the service does (default: settle only before "
                         "each snapshot, which is faster and gives the same snapshots within the tolerance)")
     p.add_argument("--from", dest="from_snapshot", type=Path, metavar="SNAPSHOT",
@@ -361,8 +455,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--pace", type=_pace, metavar="original|N",
                    help="follow the events' timestamps: 'original' in real time, N times faster "
                         "(default: as fast as possible)")
-    p.add_argument("--snapshot-every", type=int, default=0, metavar="N",
-                   help="also write a snapshot after every N records, leaving a series")
+    p.add_argument("--snapshot-every", type=_count, default=0, metavar="N",
+                   help="also write a snapshot after every N records, leaving a series of snapshots in ROOT "
+                        "(default 0: one snapshot, at the end)")
     p.add_argument("--quiet", action="store_true", help="print nothing but errors")
     p.set_defaults(func=_cmd_replay)
 
@@ -378,23 +473,35 @@ def build_parser() -> argparse.ArgumentParser:
                               "source in the configuration) it runs the built-in scenario from a file.\n"
                               "Settings come from --config FILE (TOML), then RANKTIDE_* environment variables, "
                               "then these options.")
-    p.add_argument("--source", help="kafka://HOST:PORT/TOPIC or file:PATH")
-    p.add_argument("--out", help="snapshot root folder (default ranktide-out)")
+    p.add_argument("--source", metavar="SOURCE", help="kafka://HOST:PORT/TOPIC or file:PATH")
+    p.add_argument("--out", metavar="ROOT", help="snapshot root folder (default ranktide-out)")
     p.add_argument("--group", help="Kafka consumer group (default ranktide)")
     p.add_argument("--owner-topic", metavar="TOPIC",
                    help="one-partition Kafka topic whose holder owns the graph among the group's processes "
                         "(default GROUP.owner; created when missing)")
     add_engine_options(p)
-    p.add_argument("--snapshot-interval", type=_positive_float, help="seconds between snapshots (default 60)")
-    p.add_argument("--keep-snapshots", type=int, help="snapshots kept, older ones pruned (default 5)")
-    p.add_argument("--config", type=Path, help="TOML configuration file")
-    p.add_argument("--micro-batch", type=int, help="most events handed to the engine at once (default 50000)")
-    p.add_argument("--rejects", type=Path, help="rejects file (default ROOT/rejects.jsonl)")
-    p.add_argument("--rejects-topic", help="send rejects to this Kafka topic instead of a file")
-    p.add_argument("--score-topic", help="Kafka topic for the score-change feed (log-compacted, keyed profile/node)")
-    p.add_argument("--metrics", help="HOST:PORT of the Prometheus text endpoint (default 127.0.0.1:9464; '' disables)")
-    p.add_argument("--max-id-length", type=int, help="longest node id accepted, in characters (default 1024)")
-    p.add_argument("--max-message-bytes", type=int, help="largest record accepted, in bytes (default 1048576)")
+    p.add_argument("--snapshot-interval", type=_positive_float, metavar="SECONDS",
+                   help="seconds between snapshots (default 60)")
+    p.add_argument("--keep-snapshots", type=_positive_int, metavar="N",
+                   help="snapshots kept, older ones pruned (default 5)")
+    p.add_argument("--config", type=Path, metavar="FILE",
+                   help="TOML configuration file (a commented example: stream/ranktide.example.toml)")
+    p.add_argument("--micro-batch", type=_positive_int, metavar="N",
+                   help="most events handed to the engine at once (default 50000)")
+    p.add_argument("--rejects", metavar="PATH|file:PATH|kafka:TOPIC",
+                   help="where rejected records go (default ROOT/rejects.jsonl)")
+    p.add_argument("--rejects-topic", metavar="TOPIC", help="send rejects to this Kafka topic instead of a file")
+    p.add_argument("--score-topic", metavar="TOPIC",
+                   help="Kafka topic for the score-change feed (log-compacted, keyed profile/node)")
+    p.add_argument("--metrics", type=_address, metavar="HOST:PORT",
+                   help="address of the Prometheus text endpoint (default 127.0.0.1:9464; '' disables)")
+    p.add_argument("--connect-timeout", type=_positive_float, metavar="SECONDS",
+                   help="give up with an error when the Kafka brokers cannot be reached within this time "
+                        "(default 30)")
+    p.add_argument("--max-id-length", type=_positive_int, metavar="N",
+                   help="longest node id accepted, in characters (default 1024)")
+    p.add_argument("--max-message-bytes", type=_positive_int, metavar="N",
+                   help="largest record accepted, in bytes (default 1048576)")
     p.add_argument("--personalization", action="append", type=_personalization, metavar="NAME=SEEDS_FILE",
                    help="personalized profile seeded from a file when starting without a snapshot; may be repeated")
     p.add_argument("--stop-at-end", action="store_true", help="stop with a final snapshot when the source has no more")
@@ -412,6 +519,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", type=Path, required=True, metavar="LOG.parquet", help="the Parquet log to write")
     p.add_argument("--until-end", action="store_true",
                    help="stop at the end offsets seen at start (default: follow until SIGINT/SIGTERM)")
+    p.add_argument("--connect-timeout", type=_positive_float, metavar="SECONDS",
+                   help="give up with an error when the brokers cannot be reached within this time "
+                        "(default: RANKTIDE_CONNECT_TIMEOUT, else 30)")
     p.set_defaults(func=_cmd_record)
 
     p = sub.add_parser("audit", help="check a snapshot's scores against an exact recompute from scratch",
@@ -425,7 +535,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="audit this snapshot (default: the newest valid one; newer ones failing their "
                         "checksums are named and fail the audit)")
     p.add_argument("--all", action="store_true", help="audit every snapshot in the root")
-    p.add_argument("-k", type=int, default=100, help="size of the top set for overlap and Kendall tau (default 100)")
+    p.add_argument("-k", type=_positive_int, default=100, help="size of the top set for overlap and Kendall tau (default 100)")
     p.add_argument("--json", action="store_true", help="print the results as JSON")
     p.add_argument("--plot", type=Path, metavar="FILE.png", help="plot measured error and bound against events applied")
     p.set_defaults(func=_cmd_audit)
@@ -440,13 +550,17 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("bench", help="measure the engine against recomputing (prints figures)",
                        description="Benchmarks that print figures measured side by side in one run.")
-    from ranktide.replay.bench import add_bench_options
+    from ranktide.replay.bench_options import add_bench_options
 
     add_bench_options(p)
     p.set_defaults(func=_cmd_bench)
 
     # listed for --help; main() hands 'ranktide broker ...' to stream.broker before parsing
     sub.add_parser("broker", help="fetch and run a local single-node Kafka broker (for trying the service)")
+    for command in sub.choices.values():
+        # after the command too: 'ranktide run ... --log-level DEBUG'
+        command.add_argument("--log-level", type=_log_level, default=argparse.SUPPRESS, metavar="LEVEL",
+                             help=LOG_LEVEL_HELP)
     return parser
 
 
@@ -459,7 +573,7 @@ def main(argv: list[str] | None = None) -> int:
         return broker.main(argv[1:], prog="ranktide broker")
     parser = build_parser()
     args = parser.parse_args(argv)
-    logging.basicConfig(level=getattr(logging, str(args.log_level).upper(), logging.WARNING),
+    logging.basicConfig(level=getattr(logging, args.log_level),
                         format="%(asctime)s %(levelname)s %(name)s: %(message)s")
     try:
         return int(args.func(args) or 0)

@@ -96,6 +96,9 @@ class ServiceConfig:
         ``text`` or ``json``.
     stop_at_end : bool
         Stop (with a final snapshot) once the source has nothing more.
+    connect_timeout : float
+        Seconds to wait for the Kafka brokers at start before giving up
+        with an error (exit code 2).
     personalizations : dict
         Profile name -> seeds file, applied when starting from no snapshot.
     kafka : dict
@@ -126,6 +129,7 @@ class ServiceConfig:
     metrics: str = "127.0.0.1:9464"
     log_format: str = "text"
     stop_at_end: bool = False
+    connect_timeout: float = 30.0
     personalizations: dict[str, str] = field(default_factory=dict)
     kafka: dict[str, str] = field(default_factory=dict)
 
@@ -150,6 +154,21 @@ class ServiceConfig:
             raise ConfigError(f"keep_snapshots must be at least 1, got {self.keep_snapshots}")
         if self.log_format not in ("text", "json"):
             raise ConfigError(f"log_format must be text or json, got {self.log_format!r}")
+        for name in ("micro_batch", "poll_records", "file_chunk_bytes", "max_id_length", "max_message_bytes"):
+            if getattr(self, name) < 1:
+                raise ConfigError(f"{name} must be at least 1, got {getattr(self, name)}")
+        for name in ("snapshot_events", "settle_interval", "score_threshold"):
+            if not getattr(self, name) >= 0:
+                raise ConfigError(f"{name} must be >= 0, got {getattr(self, name)}")
+        if not (self.connect_timeout > 0 and self.connect_timeout < float("inf")):
+            raise ConfigError(f"connect_timeout must be a finite number of seconds > 0, got {self.connect_timeout}")
+        if not self.score_interval > 0:
+            raise ConfigError(f"score_interval must be > 0 seconds, got {self.score_interval}")
+        if self.metrics:
+            try:
+                parse_address(self.metrics)
+            except ValueError as exc:
+                raise ConfigError(f"metrics: {exc}") from None
         return self
 
     def targets(self) -> dict:
@@ -162,6 +181,14 @@ class ServiceConfig:
         out = {f.name: getattr(self, f.name) for f in fields(self)}
         out["kafka"] = redact(self.kafka)
         return out
+
+
+def parse_address(text: str) -> tuple[str, int]:
+    """``HOST:PORT`` (or ``:PORT``, meaning 127.0.0.1) -> (host, port); ValueError names the problem."""
+    host, sep, port = text.rpartition(":")
+    if not sep or not port.isdigit() or not 0 <= int(port) <= 65535:
+        raise ValueError(f"expected HOST:PORT with a port from 0 to 65535, got {text!r}")
+    return host or "127.0.0.1", int(port)
 
 
 def redact(props: dict[str, str]) -> dict[str, str]:

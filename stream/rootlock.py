@@ -22,7 +22,7 @@ import os
 import time
 from pathlib import Path
 
-from ranktide.stream.snapshots import SnapshotError
+from ranktide.stream.snapshots import OutputError, SnapshotError
 
 LOCK_NAME = "writer.lock"
 
@@ -61,7 +61,7 @@ class RootLock:
             root.mkdir(parents=True, exist_ok=True)
             return open(root / LOCK_NAME, "a+", encoding="utf-8")
         except OSError as exc:
-            raise SnapshotError(f"cannot create snapshot root {root}: {exc.strerror or exc}") from exc
+            raise OutputError(f"cannot write the snapshot root {root}: {exc.strerror or exc}") from exc
 
     @classmethod
     def _try(cls, root: Path):
@@ -96,8 +96,8 @@ class RootLock:
         ------
         RootLocked
             Another process holds the lock.
-        SnapshotError
-            The root or the lock file cannot be created.
+        OutputError
+            The root or the lock file cannot be created (exit code 3).
         """
         fh = cls._try(root)
         fh.seek(0)

@@ -37,8 +37,9 @@ from ranktide.stream.config import ServiceConfig
 from ranktide.stream.events import Limits
 from ranktide.stream.metrics import Metrics, start_metrics_server
 from ranktide.stream.rootlock import RootLock, RootLocked
-from ranktide.stream.snapshots import Counters, SnapshotError, load_latest, prune, write_snapshot
-from ranktide.stream.sources import Source, SourceChunk, open_source
+from ranktide.stream.snapshots import (Counters, SnapshotError, check_writable, load_latest, prune,
+                                       write_snapshot)
+from ranktide.stream.sources import Source, SourceChunk, kafka_config, open_source
 
 log = logging.getLogger("ranktide.service")
 
@@ -76,10 +77,10 @@ class RejectsSink:
             self.topic = target[len("kafka:"):]
             if not bootstrap:
                 raise SnapshotError("a kafka: rejects sink needs a kafka:// source to name the brokers")
-            self._producer = Producer({"bootstrap.servers": bootstrap, **kafka_props})
+            self._producer = Producer(kafka_config(bootstrap, kafka_props))
         else:
             self.path = Path(target[len("file:"):] if target.startswith("file:") else (target or Path(out) / "rejects.jsonl"))
-            self.path.parent.mkdir(parents=True, exist_ok=True)
+            check_writable(self.path.parent, "rejects file", self.path)
 
     def size(self) -> int:
         return self.path.stat().st_size if self.path is not None and self.path.exists() else 0
@@ -132,7 +133,7 @@ class ScoreFeed:
     def __post_init__(self) -> None:
         from confluent_kafka import Producer
 
-        self._producer = Producer({"bootstrap.servers": self.bootstrap, "linger.ms": 50, **self.props})
+        self._producer = Producer(kafka_config(self.bootstrap, self.props, **{"linger.ms": 50}))
 
     def due(self) -> bool:
         return time.monotonic() - self._last >= self.interval
@@ -263,21 +264,19 @@ class Service:
         cfg = self.cfg
         bootstrap = cfg.source[len("kafka://"):].split("/")[0] if cfg.source.startswith("kafka://") else None
         self.source_is_kafka = bootstrap is not None
-        try:
-            # before anything touches the root; a Kafka process locks it once it owns the graph
-            if bootstrap:
-                self._check_kafka_root()
-            else:
-                self._lock_root()
-        except RootLocked:
-            raise
-        except SnapshotError as exc:
-            log.error("%s", exc)
-            return 3
+        check_writable(self.out, "snapshot root")  # before any long wait or work
+        # before anything else touches the root; a Kafka process locks it once it owns the graph
+        if bootstrap:
+            self._check_kafka_root()
+            from ranktide.stream.sources import wait_for_brokers
+
+            wait_for_brokers(bootstrap, cfg.kafka, cfg.connect_timeout)
+        else:
+            self._lock_root()
         log.info("starting with %s", json.dumps(cfg.redacted(), default=str))
         rejects = RejectsSink(cfg.rejects, self.out, cfg.kafka, bootstrap)
         self.source = open_source(cfg.source, cfg.group, cfg.kafka, self.limits, cfg.poll_records,
-                                  cfg.file_chunk_bytes)
+                                  cfg.file_chunk_bytes, finite=cfg.stop_at_end)
         lock = None
         if bootstrap:
             from ranktide.stream.sources import OwnerLock

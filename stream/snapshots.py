@@ -32,18 +32,20 @@ import logging
 import os
 import re
 import shutil
+import tempfile
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
+from typing import TYPE_CHECKING
 
-import numpy as np
-import pyarrow as pa
-import pyarrow.compute as pc
-import pyarrow.parquet as pq
-
-from ranktide.solver import GLOBAL, Ranker
-from ranktide.solver.bounds import Certificate
-from ranktide.solver.ids import NodeIds
+if TYPE_CHECKING:
+    # NumPy, pyarrow and the solver (numba kernels) are imported by the functions that write or
+    # rebuild a snapshot, not at start-up: listing, manifests and checksums need none of them
+    import numpy as np
+    import pyarrow as pa
+    from ranktide.solver import Ranker
+    from ranktide.solver.bounds import Certificate
+    from ranktide.solver.ids import NodeIds
 
 FORMAT = 2
 #: Formats this version reads (1 had no ``error_bound`` column and no per-node facts).
@@ -58,6 +60,31 @@ class SnapshotError(RuntimeError):
 
 class NoValidSnapshot(SnapshotError):
     """Snapshots exist under a root, but every one fails its checks."""
+
+
+class OutputError(SnapshotError):
+    """An output (a snapshot, the rejects file, a picture) cannot be written: exit code 3."""
+
+
+def check_writable(folder: Path, what: str, target: Path | None = None) -> Path:
+    """Create ``folder`` if needed and prove a file can be made in it, before any long work.
+
+    ``what`` and ``target`` (default: the folder) name the output in the error.
+
+    Raises
+    ------
+    OutputError
+        Naming ``what``, the folder and the system's reason.
+    """
+    folder = Path(folder)
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+        fd, probe = tempfile.mkstemp(prefix=".ranktide-probe-", dir=folder)
+        os.close(fd)
+        os.unlink(probe)
+    except OSError as exc:
+        raise OutputError(f"cannot write the {what} {target or folder}: {exc.strerror or exc}") from exc
+    return folder
 
 
 @dataclass
@@ -132,6 +159,9 @@ def _fsync_dir(path: Path) -> None:
 
 def _name_ranks(names: pa.Array) -> np.ndarray:
     """Position of every node id in byte-wise name order (Arrow's string order)."""
+    import numpy as np
+    import pyarrow.compute as pc
+
     order = pc.sort_indices(names).to_numpy()
     ranks = np.empty(order.size, dtype=np.int64)
     ranks[order] = np.arange(order.size)
@@ -140,6 +170,8 @@ def _name_ranks(names: pa.Array) -> np.ndarray:
 
 def _by_rank(ids: np.ndarray, ranks: np.ndarray) -> np.ndarray:
     """``ids`` reordered so that their names ascend."""
+    import numpy as np
+
     return ids[np.argsort(ranks[ids], kind="stable")]
 
 
@@ -150,6 +182,11 @@ def _tables(ranker: Ranker, certificates: dict[str, Certificate]) -> dict[str, p
     of sorting the string columns: the same order as sorting by the strings,
     at a fraction of the cost on millions of edges.
     """
+    import numpy as np
+    import pyarrow as pa
+
+    from ranktide.solver import GLOBAL
+
     eng = ranker.engine
     names = ranker.node_names()
     ranks = _name_ranks(names)
@@ -192,6 +229,8 @@ def _tables(ranker: Ranker, certificates: dict[str, Certificate]) -> dict[str, p
 
 def _finite(x: float) -> float | None:
     """JSON has no infinity: an uncertified figure is written as null."""
+    import numpy as np
+
     return float(x) if np.isfinite(x) else None
 
 
@@ -223,15 +262,17 @@ def write_snapshot(
 
     Raises
     ------
-    SnapshotError
+    OutputError
         When the root cannot be created or written (permissions, full disk);
         no ``snap-`` folder is left behind in that case.
     """
+    import pyarrow.parquet as pq
+
     root = Path(root)
     try:
         root.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
-        raise SnapshotError(f"cannot create snapshot root {root}: {exc.strerror or exc}") from exc
+        raise OutputError(f"cannot create snapshot root {root}: {exc.strerror or exc}") from exc
     seq = next_sequence(root) if sequence is None else int(sequence)
     final = root / f"snap-{seq:08d}"
     partial = root / f".snap-{seq:08d}.partial"
@@ -276,7 +317,7 @@ def write_snapshot(
         _fsync_dir(root)
     except OSError as exc:
         shutil.rmtree(partial, ignore_errors=True)
-        raise SnapshotError(f"cannot write snapshot {final}: {exc.strerror or exc}") from exc
+        raise OutputError(f"cannot write snapshot {final}: {exc.strerror or exc}") from exc
     return final
 
 
@@ -441,6 +482,8 @@ def _intern_column(ids: NodeIds, column: pa.ChunkedArray) -> np.ndarray:
 
     The chunks of one Parquet row group share its dictionary.
     """
+    import numpy as np
+
     parts = []
     dictionary, mapping = None, None
     for chunk in column.chunks:
@@ -464,6 +507,13 @@ def _targets(manifest: dict) -> dict:
 
 def load_snapshot(path: Path, check: bool = True) -> Snapshot:
     """Rebuild a ranker from snapshot folder ``path`` (residual recomputed exactly)."""
+    import numpy as np
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    from ranktide.solver import GLOBAL, Ranker
+    from ranktide.solver.ids import NodeIds
+
     path = Path(path)
     manifest = read_manifest(path)
     if manifest.get("format") not in READABLE_FORMATS:

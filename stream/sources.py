@@ -15,7 +15,9 @@ Positions, as stored in a manifest's ``positions``:
 from __future__ import annotations
 
 import logging
+import math
 import queue
+import re
 import threading
 import time
 from dataclasses import dataclass, field
@@ -29,6 +31,74 @@ from ranktide.replay.logs import LogError, read_log
 from ranktide.stream.events import EventBatch, Limits, Parsed, parse_json_records, validate_table
 
 log = logging.getLogger("ranktide.sources")
+
+
+class SourceError(RuntimeError):
+    """A source that cannot be reached or used (exit code 2); the message names it and the reason."""
+
+
+class RateLimited(logging.Filter):
+    """Let a message through at most once per ``every`` seconds, counting the copies held back.
+
+    librdkafka retries an unreachable broker several times a second and logs
+    every failure; messages that differ only in numbers count as the same.
+    """
+
+    def __init__(self, every: float = 10.0) -> None:
+        super().__init__()
+        self.every = every
+        self._last: dict[str, float] = {}
+        self._held: dict[str, int] = {}
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        text = record.getMessage()
+        key = re.sub(r"\d+", "#", text)[:200]
+        now = time.monotonic()
+        if now - self._last.get(key, -math.inf) < self.every:
+            self._held[key] = self._held.get(key, 0) + 1
+            return False
+        if len(self._last) > 1000:
+            self._last.clear()
+        self._last[key] = now
+        held = self._held.pop(key, 0)
+        if held:
+            record.msg, record.args = f"{text} ({held} more like it not shown)", ()
+        return True
+
+
+#: librdkafka's own log: warnings and errors only, each kind at most once per 10 s.
+KAFKA_LOG = logging.getLogger("ranktide.kafka")
+KAFKA_LOG.setLevel(logging.WARNING)
+KAFKA_LOG.addFilter(RateLimited())
+
+
+def kafka_config(bootstrap: str, properties: dict[str, str], **settings) -> dict:
+    """Configuration of a Kafka client: ours, then the user's librdkafka properties.
+
+    ``log_level`` 4 keeps librdkafka at warnings; its lines go through
+    :data:`KAFKA_LOG` (rate-limited) instead of straight to stderr.
+    """
+    return {"bootstrap.servers": bootstrap, "log_level": 4, "logger": KAFKA_LOG, **settings, **properties}
+
+
+def wait_for_brokers(bootstrap: str, properties: dict[str, str], timeout: float) -> None:
+    """Return once the brokers answer a metadata request; SourceError after ``timeout`` seconds."""
+    from confluent_kafka import KafkaException
+    from confluent_kafka.admin import AdminClient
+
+    errors: list[str] = []
+    # the probe's own failures are summed up in the one error below, not logged one by one
+    quiet = logging.getLogger("ranktide.kafka.probe")
+    quiet.setLevel(logging.CRITICAL)
+    admin = AdminClient(kafka_config(bootstrap, properties, logger=quiet,
+                                     error_cb=lambda err: errors.append(err.str())))
+    try:
+        admin.list_topics(timeout=timeout)
+    except KafkaException as exc:
+        admin.poll(0.5)  # serve the error callback: it names the cause (refused, unknown host, ...)
+        reason = errors[-1] if errors else exc.args[0].str()
+        raise SourceError(f"cannot reach the Kafka brokers {bootstrap} within {timeout:g} s "
+                          f"(connect_timeout): {reason}") from None
 
 #: Header that marks a Kafka message holding an Arrow IPC stream of events.
 ARROW_CONTENT_TYPE = "application/vnd.apache.arrow.stream"
@@ -80,15 +150,22 @@ class FileSource:
         Input caps.
     chunk_bytes : int
         Most bytes taken from a file in one poll.
+    finite : bool
+        The files are complete (``--stop-at-end``): a last record without its
+        newline counts once the file has stopped growing. Otherwise a partial
+        last line waits for its newline, since the writer may not be done.
     """
 
-    def __init__(self, path: Path, limits: Limits = Limits(), chunk_bytes: int = 8 << 20) -> None:
+    def __init__(self, path: Path, limits: Limits = Limits(), chunk_bytes: int = 8 << 20,
+                 finite: bool = False) -> None:
         self.path = Path(path)
         if not self.path.exists():
             raise LogError(f"{self.path}: no such file or folder")
         self.limits = limits
         self.chunk_bytes = chunk_bytes
+        self.finite = finite
         self._pos: dict[str, dict[str, int]] = {}
+        self._tail: dict[str, int] = {}  # file -> size when only a partial line was left unread
 
     def _files(self) -> list[Path]:
         if self.path.is_dir():
@@ -119,18 +196,33 @@ class FileSource:
                 raise LogError(f"{f}: file shrank below the recorded position {pos['offset']} (truncated or replaced?)")
             if size == pos["offset"]:
                 continue
-            for chunk in read_log(f, self.limits, pos["offset"], pos["line"] + 1, follow_partial=True,
-                                  chunk_bytes=self.chunk_bytes):
-                places = [
-                    {"file": key, "line": int(chunk.lines[r]), "offset": int(chunk.offsets[r]), "record": chunk.raw(int(r))[:2000]}
-                    for r in chunk.parsed.rejected_rows
-                ]
-                records = int(chunk.parsed.valid_rows.size + chunk.parsed.rejected_rows.size)
-                pos["line"] = chunk.end_line
-                pos["offset"] = chunk.end_offset
-                return SourceChunk(chunk.parsed, places, records)
+            chunk = self._read(f, pos, follow_partial=True)
+            if chunk is None and self.finite:
+                # only a partial last line is left: it is the last record once the file stops growing
+                if self._tail.get(key) == size:
+                    chunk = self._read(f, pos, follow_partial=False)
+                self._tail[key] = size
+            if chunk is None:
+                continue
+            places = [
+                {"file": key, "line": int(chunk.lines[r]), "offset": int(chunk.offsets[r]), "record": chunk.raw(int(r))[:2000]}
+                for r in chunk.parsed.rejected_rows
+            ]
+            records = int(chunk.parsed.valid_rows.size + chunk.parsed.rejected_rows.size)
+            pos["line"] = chunk.end_line
+            pos["offset"] = chunk.end_offset
+            return SourceChunk(chunk.parsed, places, records)
         time.sleep(min(timeout, 0.05))
         return None
+
+    def _read(self, f: Path, pos: dict[str, int], follow_partial: bool):
+        """The next chunk of ``f`` from ``pos`` (None when no complete record is there)."""
+        reader = read_log(f, self.limits, pos["offset"], pos["line"] + 1, follow_partial=follow_partial,
+                          chunk_bytes=self.chunk_bytes)
+        try:
+            return next(reader, None)
+        finally:
+            reader.close()
 
     def at_end(self) -> bool:
         for f in self._files():
@@ -431,6 +523,7 @@ class KafkaSource:
             "enable.auto.offset.store": False,
             "auto.offset.reset": "earliest",
             "enable.partition.eof": True,
+            "log_level": 4,
             "message.max.bytes": max(limits.max_record_bytes + 65536, 1000000),
             # large, eager fetches: measured twice the messages per second of the defaults
             "fetch.wait.max.ms": 10,
@@ -440,7 +533,7 @@ class KafkaSource:
             "queued.max.messages.kbytes": 1 << 20,
             **properties,
         }
-        self._consumer = Consumer(conf, logger=log)
+        self._consumer = Consumer(conf, logger=KAFKA_LOG)
         self._next: dict[tuple[str, int], int] = {}
         self._eof: set[tuple[str, int]] = set()
         self._assigned: set[tuple[str, int]] = set()
@@ -460,7 +553,7 @@ class KafkaSource:
             if not missing:
                 return [(t, p) for t in self.topics for p in sorted(meta.topics[t].partitions)]
             if time.monotonic() > deadline:
-                raise RuntimeError(f"Kafka topic(s) {', '.join(missing)} not found at {self.bootstrap}")
+                raise SourceError(f"Kafka topic(s) {', '.join(missing)} not found at {self.bootstrap}")
             time.sleep(0.5)
 
     def seek(self, positions: dict) -> None:
@@ -533,7 +626,7 @@ class KafkaSource:
                 if self._next.get(key, 0) >= offset:
                     self._eof.add(key)
             elif fatal:
-                raise RuntimeError(f"Kafka consumer failed: {text}")
+                raise SourceError(f"Kafka consumer failed: {text}")
             else:
                 log.warning("Kafka: %s", text)
         return fetched.chunk
@@ -593,14 +686,14 @@ class OwnerLock:
             "heartbeat.interval.ms": 1_000,
             "enable.auto.commit": False,
             **properties,
-        }, logger=log)
+        }, logger=KAFKA_LOG)
         self._consumer.subscribe([topic], on_assign=self._assign, on_revoke=self._revoke, on_lost=self._revoke)
 
     def _ensure_topic(self, bootstrap: str, properties: dict[str, str]) -> None:
         from confluent_kafka import KafkaError, KafkaException
         from confluent_kafka.admin import AdminClient, NewTopic
 
-        admin = AdminClient({"bootstrap.servers": bootstrap, **properties})
+        admin = AdminClient(kafka_config(bootstrap, properties))
         futures = admin.create_topics([NewTopic(self.topic, num_partitions=1)], request_timeout=30)
         try:
             futures[self.topic].result(timeout=30)
@@ -612,7 +705,7 @@ class OwnerLock:
             # without the Create ACL, a topic an operator created beforehand is enough
             denied = code in (KafkaError.TOPIC_AUTHORIZATION_FAILED, KafkaError.CLUSTER_AUTHORIZATION_FAILED)
             if not (denied and self.topic in admin.list_topics(timeout=30).topics):
-                raise RuntimeError(f"cannot create owner topic {self.topic}: {exc.args[0].str()}") from exc
+                raise SourceError(f"cannot create owner topic {self.topic}: {exc.args[0].str()}") from exc
 
     def _assign(self, consumer, partitions) -> None:
         if partitions:
@@ -638,8 +731,8 @@ class OwnerLock:
 
 
 def open_source(url: str, group: str, properties: dict[str, str], limits: Limits, batch_records: int,
-                chunk_bytes: int = 8 << 20) -> Source:
-    """A source for ``file:PATH`` or ``kafka://...``."""
+                chunk_bytes: int = 8 << 20, finite: bool = False) -> Source:
+    """A source for ``file:PATH`` or ``kafka://...``; ``finite``: files are complete (see FileSource)."""
     if url.startswith("file:"):
-        return FileSource(Path(url[len("file:"):]), limits, chunk_bytes)
+        return FileSource(Path(url[len("file:"):]), limits, chunk_bytes, finite)
     return KafkaSource(url, group, properties, limits, batch_records)

@@ -98,6 +98,42 @@ def check_snapshot_against(stream: Stream, snap: Path, tolerance: float | None =
     return manifest
 
 
+def free_port() -> int:
+    """A free loopback port for a child's metrics endpoint."""
+    import socket
+
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def scrape(port: int) -> dict[str, float]:
+    """The child's Prometheus metrics (``{}`` while the endpoint is not up yet)."""
+    import urllib.error
+    import urllib.request
+
+    try:
+        with urllib.request.urlopen(f"http://127.0.0.1:{port}/metrics", timeout=5) as resp:
+            text = resp.read().decode()
+    except (urllib.error.URLError, ConnectionError, TimeoutError):
+        return {}
+    return {ln.split()[0]: float(ln.split()[1]) for ln in text.splitlines() if ln and ln[0] != "#"}
+
+
+def wait_until_counted(proc: subprocess.Popen, port: int, records: int, timeout: float = 180.0) -> None:
+    """Until the child on metrics ``port`` has applied or rejected ``records`` records (a generous deadline)."""
+    import time
+
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        assert proc.poll() is None, "the consumer exited early"
+        m = scrape(port)
+        if m.get("ranktide_events_applied_total", 0) + m.get("ranktide_events_rejected_total", 0) >= records:
+            return
+        time.sleep(0.1)
+    raise AssertionError(f"the consumer did not take {records} records within {timeout} s")
+
+
 #: Children started by :func:`ranktide`; ``conftest.py`` kills those still running after each test.
 CHILDREN: list[subprocess.Popen] = []
 

@@ -15,7 +15,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from stream_helpers import Stream, check_snapshot_against, newest_snapshot, ranktide, sigterm_and_check
+from stream_helpers import (Stream, check_snapshot_against, free_port, newest_snapshot, ranktide, sigterm_and_check,
+                            wait_until_counted)
 
 TOLERANCE = 1e-6
 SLOW = {"RANKTIDE_FILE_CHUNK_BYTES": "2048"}  # small polls, so a crash lands mid-stream
@@ -90,9 +91,9 @@ def test_follows_a_growing_file_and_resumes_after_kill9(tmp_path: Path) -> None:
 def test_sigterm_finishes_with_a_final_snapshot(tmp_path: Path) -> None:
     stream, log = _logged_stream(tmp_path, np.random.default_rng(5), 3000)
     root = tmp_path / "snaps"
-    proc = ranktide(*_run_args(log, root, "--snapshot-interval", "3600"))
-    _wait_for(lambda: (root / "rejects.jsonl").exists() or _has_snapshot(root), what="the consumer to start")
-    time.sleep(1.0)
+    port = free_port()
+    proc = ranktide(*_run_args(log, root, "--snapshot-interval", "3600", "--metrics", f"127.0.0.1:{port}"))
+    wait_until_counted(proc, port, len(stream.records))  # however loaded the machine
     sigterm_and_check(proc, stream, root, TOLERANCE)
 
 
@@ -154,21 +155,13 @@ def test_configuration_file_environment_and_secrets(tmp_path: Path, as_env: bool
         assert cfg.kafka["ssl.key.password"] == "s3cret"
 
 
-def _free_port() -> int:
-    import socket
-
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
-
-
 def test_metrics_endpoint_and_json_logs(tmp_path: Path) -> None:
     """Prometheus text format (exposition format 0.0.4) on 127.0.0.1, structured logs on request."""
     import urllib.request
 
     stream, log = _logged_stream(tmp_path, np.random.default_rng(6), 3000)
     root = tmp_path / "snaps"
-    port = _free_port()
+    port = free_port()
     args = [a for a in _run_args(log, root) if a not in ("--metrics", "")]
     proc = ranktide(*args, "--metrics", f"127.0.0.1:{port}", "--log-json")
     _wait_for(lambda: _has_snapshot(root), what="a first snapshot")

@@ -18,7 +18,8 @@ import pytest
 from confluent_kafka import Consumer, Producer
 
 from ranktide.stream.sources import ARROW_CONTENT_TYPE
-from stream_helpers import Stream, check_snapshot_against, newest_snapshot, ranktide, sigterm_and_check
+from stream_helpers import (Stream, check_snapshot_against, free_port, newest_snapshot, ranktide, sigterm_and_check,
+                            wait_until_counted)
 
 pytestmark = pytest.mark.kafka
 TOLERANCE = 1e-6
@@ -67,6 +68,23 @@ def _wait_for_records(root: Path, count: int, timeout: float = 120) -> None:
     raise AssertionError(f"no snapshot under {root} covers {count} records")
 
 
+def _wait_owner_group_members(broker, group: str, count: int, timeout: float = 120) -> None:
+    """Until the broker reports ``count`` members in ``group`` (the owner lock's group)."""
+    from confluent_kafka.admin import AdminClient
+
+    admin = AdminClient({"bootstrap.servers": broker.bootstrap})
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        try:
+            described = admin.describe_consumer_groups([group])[group].result(timeout=10)
+            if len(described.members) >= count:
+                return
+        except Exception:  # noqa: BLE001 - the group may not exist yet
+            pass
+        time.sleep(0.2)
+    raise AssertionError(f"group {group} did not reach {count} members within {timeout} s")
+
+
 def test_two_kill9_and_a_broker_restart_count_every_message_once(kafka_broker, tmp_path: Path) -> None:
     rng = np.random.default_rng(21)
     topic = _topic(kafka_broker)
@@ -107,9 +125,11 @@ def test_sigterm_exits_zero_with_a_final_snapshot_and_commits(kafka_broker, tmp_
     stream = Stream()
     stream.extend(np.random.default_rng(4), 5_000)
     _produce(kafka_broker.bootstrap, topic, stream.records)
-    proc = ranktide(*_args(kafka_broker, topic, root, "--snapshot-interval", "3600"))
-    time.sleep(3.0)  # it starts and takes records; no snapshot is due before the signal
-    assert proc.poll() is None, "the consumer exited early"
+    port = free_port()
+    proc = ranktide(*_args(kafka_broker, topic, root, "--snapshot-interval", "3600",
+                           "--metrics", f"127.0.0.1:{port}"))
+    # it takes every record (seen on its metrics, however loaded the machine); no snapshot is due before the signal
+    wait_until_counted(proc, port, len(stream.records))
     sigterm_and_check(proc, stream, root, TOLERANCE)
     from confluent_kafka import TopicPartition
 
@@ -247,7 +267,7 @@ def test_a_standby_in_the_same_group_takes_over_without_loss(kafka_broker, tmp_p
     owner = ranktide(*_args(kafka_broker, topic, root))
     _wait_snapshot_count(root, 1)
     standby = ranktide(*_args(kafka_broker, topic, root))
-    time.sleep(2.0)  # the standby joins the group and waits
+    _wait_owner_group_members(kafka_broker, f"g-{topic}.owner", 2)  # the standby has joined and waits
     owner.send_signal(signal.SIGTERM)
     _, owner_err = owner.communicate(timeout=60)
     assert owner.returncode == 0, owner_err.decode()[-2000:]
@@ -278,7 +298,10 @@ def test_prefetched_batches_move_no_position_until_taken(kafka_broker) -> None:
     source = KafkaSource(f"kafka://{kafka_broker.bootstrap}/{topic}", f"g-{topic}", {}, Limits(), batch_records=10)
     try:
         source.seek({})
-        time.sleep(2.0)  # the thread fills its queue meanwhile
+        deadline = time.monotonic() + 60
+        while not source._prefetch._queue.full() and time.monotonic() < deadline:
+            time.sleep(0.05)  # the thread reads ahead until its queue is full
+        assert source._prefetch._queue.full()
         assert source.positions() == {"kafka": {topic: {"0": 0}}}
         first = None
         while first is None:
