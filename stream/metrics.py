@@ -37,10 +37,11 @@ class Metrics:
 
     def record_snapshot(self, seconds: float, created: float) -> None:
         """A snapshot written in ``seconds``, stamped ``created`` (Unix time), covering every record read."""
-        self.snapshots += 1
-        self.snapshot_seconds = seconds
-        self.last_snapshot = created
+        # the count first: a scrape between the two never pairs the new time with old records
         self.records_since_snapshot = 0
+        self.last_snapshot = created
+        self.snapshot_seconds = seconds
+        self.snapshots += 1
 
     def rates(self) -> tuple[float, float]:
         """Events applied and rejected per second over the last minute."""
