@@ -48,10 +48,11 @@ import numpy as np
 #: Default number of best nodes of a personalization certified to a relative error.
 CERTIFIED_TOP = 100
 
-#: Floor of every bound, relative to its score: the running residual and the
-#: normalisation carry rounding of about 1e-16 relative per operation, so a
-#: bound of exactly zero (a residual pushed to exact zero) would overstate what
-#: floating point knows.
+#: Floor of every bound, relative to its score plus the largest score: the
+#: running residual and the normalisation carry rounding of about 1e-16 per
+#: operation (relative to the values that met, which can be the largest ones:
+#: an estimate pushed back to zero keeps a few 1e-17), so a bound of exactly
+#: zero would overstate what floating point knows.
 ROUNDING_FLOOR = 1e-12
 
 
@@ -64,6 +65,7 @@ class Weights:
 
     alpha: float = 0.0
     beta: float = 1.0
+    kth: float = 0.0  #: the K-th best estimate the thresholds were sized for (personalizations)
 
     def of(self, s: np.ndarray) -> np.ndarray:
         return self.alpha * s + self.beta
@@ -149,7 +151,8 @@ def normalised_bounds(p: np.ndarray, r: np.ndarray, err: np.ndarray, l1_bound: f
     with np.errstate(invalid="ignore"):
         b = (err + np.abs(p) / s_p * drift) / (s_p - drift)
     b = np.where(np.isnan(b), math.inf, b)
-    return np.maximum(np.minimum(b, l1_bound), ROUNDING_FLOOR * np.abs(p) / s_p)
+    scale = np.abs(p) / s_p
+    return np.maximum(np.minimum(b, l1_bound), ROUNDING_FLOOR * (scale + scale.max(initial=0.0)))
 
 
 def kth_largest(values: np.ndarray, k: int) -> float:
@@ -174,8 +177,9 @@ def certify(scores: np.ndarray, bounds: np.ndarray, l1_bound: float, certified_t
     """
     n = scores.size
     k = n if certified_top is None else min(int(certified_top), n)
-    positive = scores[scores > 0.0]
-    threshold = kth_largest(positive, k) if positive.size else 0.0
+    # scores within the rounding floor of zero are zero: they never set the K-th score
+    significant = scores[scores > ROUNDING_FLOOR * scores.max(initial=0.0)]
+    threshold = kth_largest(significant, k) if significant.size else 0.0
     top = scores >= threshold if threshold > 0.0 else scores > 0.0
     with np.errstate(divide="ignore", invalid="ignore"):
         lower = scores - bounds

@@ -33,7 +33,7 @@ import numpy as np
 from . import kernels
 from .exact import solve
 from .graph import DynamicGraph
-from .bounds import CERTIFIED_TOP, Certificate, Weights, certify, global_upper, kth_largest, \
+from .bounds import CERTIFIED_TOP, ROUNDING_FLOOR, Certificate, Weights, certify, global_upper, kth_largest, \
     normalised_bounds, unnormalised_bounds
 from .metrics import certified_bound, top_k_indices
 
@@ -370,7 +370,8 @@ class Engine:
             weights = self._personal_weights(k, weights, fresh=attempt > 0)
             self._weights[k] = weights
             stats.add(self._push_and_sweep(k, weights))
-            if self._sum_shift(k) <= self._budget_part():
+            # pushes move the estimates: the K-th score the thresholds assumed must still hold
+            if self._sum_shift(k) <= self._budget_part() and self._kth_holds(k, weights.kth):
                 break
         return stats
 
@@ -441,29 +442,37 @@ class Engine:
         beta = alpha * (1.0 - part) * kth / xg_max if xg_max > 0.0 else alpha * kth
         if previous is not None:
             beta = min(beta, 0.5 * previous.beta)
-        return Weights(alpha, max(beta, 1e-300))
+        return Weights(alpha, max(beta, 1e-300), kth)
 
     def _kth_score(self, k: int, fresh: bool) -> float:
-        """A certified lower bound on the ``certified_top``-th largest estimate of profile ``k``.
+        """A lower bound on the ``certified_top``-th largest estimate of profile ``k``, as it is now.
 
-        The partial sort is cached; in between, a cheap count checks that at
-        least ``K`` estimates still reach :data:`KTH_MARGIN` times the cached
-        value (then the K-th largest does too), else it is recomputed.
+        The partial sort is cached; in between, :meth:`_kth_holds` checks with
+        one count that :data:`KTH_MARGIN` times the cached value is still a
+        lower bound, else it is recomputed. Estimates within the rounding floor
+        of zero do not count (fewer than K significant ones: the smallest).
         """
-        n = self.n_nodes
-        p = self.P[k, :n]
         cached = self._kth.get(k, 0.0)
-        if not fresh and cached > 0.0 and \
-                np.count_nonzero(p >= KTH_MARGIN * cached) >= min(self.certified_top, np.count_nonzero(p > 0.0)):
+        if not fresh and cached > 0.0 and self._kth_holds(k, KTH_MARGIN * cached):
             return KTH_MARGIN * cached
-        positive = p[p > 0.0]
-        if positive.size:
-            cached = kth_largest(positive, self.certified_top)
+        p = self._significant(k)
+        if p.size:
+            cached = kth_largest(p, self.certified_top)
         else:  # nothing settled yet: x_k >= a s_k gives a lower bound
-            seeds = self.S[k, :n]
+            seeds = self.S[k, : self.n_nodes]
             cached = self.teleport * kth_largest(seeds[seeds > 0.0], self.certified_top)
         self._kth[k] = cached
         return cached
+
+    def _significant(self, k: int) -> np.ndarray:
+        """Profile ``k``'s estimates above the rounding floor of zero."""
+        p = self.P[k, : self.n_nodes]
+        return p[p > ROUNDING_FLOOR * p.max(initial=0.0)]
+
+    def _kth_holds(self, k: int, value: float) -> bool:
+        """At least K significant estimates (all of them, when fewer) reach ``value``."""
+        p = self._significant(k)
+        return bool(np.count_nonzero(p >= value) >= min(self.certified_top, p.size))
 
     def settle_certified(self) -> dict[str, Certificate]:
         """Settle, then certify every profile; tighten and settle again where a certificate falls short.
