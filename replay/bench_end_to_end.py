@@ -54,7 +54,7 @@ def write_logs(src: np.ndarray, dst: np.ndarray, folder: Path) -> tuple[Path, Pa
 
 def read_only(path: Path) -> int:
     """Read and parse a log, discarding the events; return how many were valid."""
-    from ranktide.replay.logs import read_log
+    from ranktide.stream.logs import read_log
 
     return sum(len(chunk.parsed.batch) for chunk in read_log(path))
 
@@ -184,7 +184,7 @@ def timed_service(source: str, out: Path) -> dict:
 
 def e2e_run(kafka, kind: str, values: list[bytes], events: int, snapshot: Path, folder: Path) -> dict:
     """Produce (untimed), then time the service from the snapshot to the end of the topic."""
-    from ranktide.stream.sources import ARROW_CONTENT_TYPE
+    from ranktide.stream.events import ARROW_CONTENT_TYPE
 
     topic = f"bench-{kind}"
     kafka.create_topic(topic, partitions=3)

@@ -25,7 +25,8 @@ from pathlib import Path
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from ranktide.stream.sources import ARROW_CONTENT_TYPE, _is_arrow, kafka_config, parse_kafka_url, wait_for_brokers
+from ranktide.stream.events import ARROW_CONTENT_TYPE, is_arrow_message
+from ranktide.stream.sources import kafka_config, parse_kafka_url, wait_for_brokers
 
 log = logging.getLogger("ranktide.record")
 
@@ -129,7 +130,7 @@ def _append(rows: dict[str, list], msg) -> None:
     rows["partition"].append(msg.partition())
     rows["offset"].append(msg.offset())
     rows["timestamp"].append(stamp if kind != 0 else -1)
-    rows["content_type"].append(ARROW_CONTENT_TYPE if _is_arrow(msg) else None)
+    rows["content_type"].append(ARROW_CONTENT_TYPE if is_arrow_message(msg) else None)
     rows["value"].append(msg.value() if msg.value() is not None else b"")
 
 

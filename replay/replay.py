@@ -8,15 +8,14 @@ import time
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 
-from ranktide.solver import EventBatch, Ranker
-from ranktide.stream.events import Limits
 import numpy as np
 
+from ranktide.solver import EventBatch, Ranker
+from ranktide.stream.events import Limits
+from ranktide.stream.logs import LogChunk, read_log, row_count_hint, seed_personalizations
 from ranktide.stream.rootlock import RootLock
 from ranktide.stream.snapshots import (Counters, OutputError, SnapshotError, load_snapshot, select_snapshot,
                                        snapshot_dirs, write_snapshot)
-
-from .logs import LogChunk, LogError, read_log, row_count_hint
 
 
 @dataclass
@@ -97,32 +96,6 @@ class ReplaySummary:
         return out
 
 
-def read_seeds_file(path: Path) -> tuple[list[str], list[float]]:
-    """Seeds of a personalization: one node per line, optionally ``node,weight`` or ``node<TAB>weight``.
-
-    Blank lines and lines starting with ``#`` are skipped.
-    """
-    nodes, weights = [], []
-    try:
-        text = Path(path).read_text(encoding="utf-8")
-    except OSError as exc:
-        raise LogError(f"{path}: cannot read seeds file: {exc.strerror or exc}") from exc
-    for number, line in enumerate(text.splitlines(), 1):
-        line = line.strip()
-        if not line or line.startswith("#"):
-            continue
-        parts = [p.strip() for p in line.replace("\t", ",").split(",")]
-        try:
-            weight = float(parts[1]) if len(parts) > 1 and parts[1] else 1.0
-        except ValueError:
-            raise LogError(f"{path}:{number}: weight {parts[1]!r} is not a number") from None
-        if not weight >= 0 or weight == float("inf"):
-            raise LogError(f"{path}:{number}: seed weight must be a finite number >= 0")
-        nodes.append(parts[0])
-        weights.append(weight)
-    return nodes, weights
-
-
 class RejectsWriter:
     """Appends rejected records, with their place and reason, to a JSON Lines file."""
 
@@ -183,14 +156,6 @@ def apply_events(ranker: Ranker, batch: EventBatch, counters: Counters, micro_ba
         counters.events_applied += len(part)
         if micro_batch:
             ranker.settle()
-
-
-def seed_personalizations(ranker: Ranker, personalizations: dict[str, Path]) -> None:
-    for name, path in personalizations.items():
-        nodes, weights = read_seeds_file(path)
-        ranker.add_profile(name)
-        if nodes:
-            ranker.apply(EventBatch.seeds(name, nodes, weights))
 
 
 @dataclass

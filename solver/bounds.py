@@ -195,28 +195,37 @@ def certify(scores: np.ndarray, bounds: np.ndarray, l1_bound: float, certified_t
     return Certificate(scores, bounds, float(l1_bound), k, threshold, rtol_reached, absolute_reached)
 
 
-def rank_ranges(scores: np.ndarray, bounds: np.ndarray, nodes: np.ndarray,
-                unlisted: int = 0, unlisted_bound: float = 0.0) -> tuple[np.ndarray, np.ndarray]:
-    """Best and worst possible rank (1 = first) of ``nodes`` given the intervals ``score +- bound``.
+def sorted_ends(scores: np.ndarray, bounds: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Every node's interval ends ``score - bound`` and ``score + bound``, each sorted ascending."""
+    return np.sort(scores - bounds), np.sort(scores + bounds)
+
+
+def ranks_between(lo_sorted: np.ndarray, hi_sorted: np.ndarray, lo: np.ndarray, hi: np.ndarray,
+                  unlisted: int = 0, unlisted_bound: float = 0.0) -> tuple[np.ndarray, np.ndarray]:
+    """Best and worst possible rank (1 = first) of nodes with intervals ``[lo, hi]``.
 
     Node ``v`` is certainly above ``w`` when ``lo(v) > hi(w)``; so ``v``'s rank
     runs from ``1 + #{w : lo(w) > hi(v)}`` to ``1 + #{w != v : hi(w) >= lo(v)}``
-    (design notes 4b, after Wills & Ipsen [2]). Sorting makes it
-    ``O((n + len(nodes)) log n)``. ``unlisted`` more nodes, published as 0
-    with the bound ``unlisted_bound`` (a personalization's omitted nodes),
-    take part too.
+    (design notes 4b, after Wills & Ipsen [2]); binary searches in the sorted
+    ends (:func:`sorted_ends`) count them. ``unlisted`` more nodes, published
+    as 0 with the bound ``unlisted_bound`` (a personalization's omitted
+    nodes), take part too.
     """
-    lo = np.sort(scores - bounds)
-    hi = np.sort(scores + bounds)
-    lo_v = scores[nodes] - bounds[nodes]
-    hi_v = scores[nodes] + bounds[nodes]
-    best = 1 + (lo.size - np.searchsorted(lo, hi_v, side="right"))
+    best = 1 + (lo_sorted.size - np.searchsorted(lo_sorted, hi, side="right"))
     # every w with hi(w) >= lo(v), v itself included (hi(v) >= lo(v)), hence no 1 +
-    worst = hi.size - np.searchsorted(hi, lo_v, side="left")
+    worst = hi_sorted.size - np.searchsorted(hi_sorted, lo, side="left")
     if unlisted:
-        best = best + np.where(-unlisted_bound > hi_v, unlisted, 0)
-        worst = worst + np.where(unlisted_bound >= lo_v, unlisted, 0)
+        best = best + np.where(-unlisted_bound > hi, unlisted, 0)
+        worst = worst + np.where(unlisted_bound >= lo, unlisted, 0)
     return best.astype(np.int64), worst.astype(np.int64)
+
+
+def rank_ranges(scores: np.ndarray, bounds: np.ndarray, nodes: np.ndarray,
+                unlisted: int = 0, unlisted_bound: float = 0.0) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`ranks_between` for ``nodes`` of one score vector (sorts once: ``O(n log n)``)."""
+    lo_sorted, hi_sorted = sorted_ends(scores, bounds)
+    return ranks_between(lo_sorted, hi_sorted, scores[nodes] - bounds[nodes], scores[nodes] + bounds[nodes],
+                         unlisted, unlisted_bound)
 
 
 def top_set_certified(scores: np.ndarray, bounds: np.ndarray, top: np.ndarray) -> bool:

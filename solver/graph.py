@@ -53,6 +53,28 @@ def hash_home(u: int, v: int, shift: int) -> int:
 
 
 @njit(cache=True, nogil=True)
+def compact_blocks(start, cap, out_degree, n, sizes, e_dst, e_w, new_src, new_dst, new_w, free_blocks, counters):
+    """Copy every node's out-edges into blocks of ``sizes[u]`` slots, in node order, in the ``new_`` arrays.
+
+    Drops the slack that relocations and deletions leave; the caller swaps the
+    arrays in and rebuilds the hash table.
+    """
+    top = 0
+    for u in range(n):
+        deg = out_degree[u]
+        old = start[u]
+        start[u] = top
+        cap[u] = sizes[u]
+        for j in range(deg):
+            new_src[top + j] = u
+            new_dst[top + j] = e_dst[old + j]
+            new_w[top + j] = e_w[old + j]
+        top += sizes[u]
+    free_blocks[:] = -1
+    counters[0] = top
+
+
+@njit(cache=True, nogil=True)
 def rebuild_hash(table: np.ndarray, shift: int, src: np.ndarray, dst: np.ndarray, top: int) -> None:
     """Fill an empty ``table`` with every live slot below ``top``."""
     mask = table.shape[0] - 1
@@ -204,8 +226,6 @@ class DynamicGraph:
 
     def compact(self) -> None:
         """Rewrite every block in node order with a quarter of slack; rebuild the hash table (O(edges))."""
-        from .kernels import compact_blocks
-
         a = self.arrays
         sizes = self.slots_for(a.out_degree[: self.n_nodes].astype(np.int64))
         size = max(int(sizes.sum()) + int(sizes.sum()) // 4, 16)

@@ -170,5 +170,67 @@ class NodeIds:
         )
         return large.cast(pa.string())
 
+    def frozen(self) -> "FrozenIds":
+        """A read-only view of the names held now, safe to read from another thread.
+
+        See :class:`FrozenIds`: it costs no copy.
+        """
+        return FrozenIds(self._off, self._data, self._hashes, self._table, self._shift, len(self))
+
     def memory_bytes(self) -> int:
         return int(self._off.nbytes + self._data.nbytes + self._hashes.nbytes + self._table.nbytes)
+
+
+class FrozenIds:
+    """The names ``0 .. n-1`` of a :class:`NodeIds` as they were when it was taken.
+
+    It holds the arrays of the :class:`NodeIds` of that moment, not copies, and
+    stays correct while the :class:`NodeIds` goes on interning in another
+    thread, because interning only appends: entries below ``n`` (offsets,
+    bytes, hashes) are never written again; a hash-table cell is written only
+    while it is empty (-1), and only with an id >= ``n``, which a lookup here
+    steps over as if it were a different name, so the probe sequence of a held
+    name is the one it had; and growth (:meth:`NodeIds._reserve`) moves to new
+    arrays, leaving these untouched. Aligned 4-byte cells are read whole.
+
+    Parameters
+    ----------
+    off, data, hashes, table : arrays
+        The :class:`NodeIds` buffers (see its module docstring).
+    shift : int
+        Hash shift of ``table``.
+    n : int
+        Names held.
+    """
+
+    def __init__(self, off: np.ndarray, data: np.ndarray, hashes: np.ndarray, table: np.ndarray,
+                 shift: int, n: int) -> None:
+        self._off, self._data, self._hashes, self._table = off, data, hashes, table
+        self._shift = shift
+        self.n = int(n)
+
+    def __len__(self) -> int:
+        return self.n
+
+    def lookup(self, name: str) -> int | None:
+        """Id of ``name``, or None when it was not held."""
+        raw = np.frombuffer(name.encode("utf-8"), dtype=np.uint8)
+        h = _fnv1a(raw, 0, raw.shape[0])
+        mask = self._table.shape[0] - 1
+        cell = ((int(h) * int(_GOLDEN)) & 0xFFFFFFFFFFFFFFFF) >> self._shift
+        while True:
+            idx = int(self._table[cell])
+            if idx == -1:
+                return None
+            if idx < self.n:
+                a, b = self._off[idx], self._off[idx + 1]
+                if self._hashes[idx] == h and bytes(self._data[a:b]) == raw.tobytes():
+                    return idx
+            cell = (cell + 1) & mask
+
+    def name(self, idx: int) -> str:
+        """Name of id ``idx`` (below ``n``)."""
+        if not 0 <= idx < self.n:
+            raise IndexError(idx)
+        a, b = self._off[idx], self._off[idx + 1]
+        return bytes(self._data[a:b]).decode("utf-8")

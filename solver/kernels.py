@@ -396,28 +396,6 @@ def load_edges(src, dst, wt, sizes, start, cap, out_weight, out_degree, e_src, e
     return -1
 
 
-@njit(cache=True, nogil=True)
-def compact_blocks(start, cap, out_degree, n, sizes, e_dst, e_w, new_src, new_dst, new_w, free_blocks, counters):
-    """Copy every node's out-edges into blocks of ``sizes[u]`` slots, in node order, in the ``new_`` arrays.
-
-    Drops the slack that relocations and deletions leave; the caller swaps the
-    arrays in and rebuilds the hash table.
-    """
-    top = 0
-    for u in range(n):
-        deg = out_degree[u]
-        old = start[u]
-        start[u] = top
-        cap[u] = sizes[u]
-        for j in range(deg):
-            new_src[top + j] = u
-            new_dst[top + j] = e_dst[old + j]
-            new_w[top + j] = e_w[old + j]
-        top += sizes[u]
-    free_blocks[:] = -1
-    counters[0] = top
-
-
 # ---------------------------------------------------------------- scheduling
 
 

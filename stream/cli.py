@@ -171,7 +171,7 @@ def _targets(args: argparse.Namespace) -> dict | None:
 
 
 def _cmd_replay(args: argparse.Namespace) -> int:
-    from ranktide.replay.logs import LogError
+    from ranktide.stream.logs import LogError
     from ranktide.replay.replay import ReplayOptions, replay_log
     from ranktide.stream.snapshots import OutputError, SnapshotError, check_writable
 
@@ -235,7 +235,7 @@ class _JsonFormatter(logging.Formatter):
 
 
 def _cmd_run(args: argparse.Namespace) -> int:
-    from ranktide.replay.logs import LogError
+    from ranktide.stream.logs import LogError
     from ranktide.stream.config import ConfigError, load_config
     from ranktide.stream.service import Service
     from ranktide.stream.sources import SourceError
@@ -250,6 +250,8 @@ def _cmd_run(args: argparse.Namespace) -> int:
         "score_topic": args.score_topic, "metrics": args.metrics,
         "log_format": "json" if args.log_json else None, "stop_at_end": True if args.stop_at_end else None,
         "max_id_length": args.max_id_length, "max_message_bytes": args.max_message_bytes,
+        "api_token": args.api_token, "api_allow_no_token": True if args.api_allow_no_token else None,
+        "ready_max_lag": args.ready_max_lag,
         "connect_timeout": args.connect_timeout,
     }
     if args.personalization:
@@ -494,7 +496,16 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--score-topic", metavar="TOPIC",
                    help="Kafka topic for the score-change feed (log-compacted, keyed profile/node)")
     p.add_argument("--metrics", type=_address, metavar="HOST:PORT",
-                   help="address of the Prometheus text endpoint (default 127.0.0.1:9464; '' disables)")
+                   help="address of the Prometheus text endpoint and the read API (default 127.0.0.1:9464; "
+                        "'' disables both)")
+    p.add_argument("--api-token", metavar="TOKEN",
+                   help="bearer token the read API's /v1/ paths require (prefer the RANKTIDE_API_TOKEN "
+                        "variable: options show in process lists)")
+    p.add_argument("--api-allow-no-token", action="store_true",
+                   help="serve the read API on a non-loopback address without a token (refused otherwise)")
+    p.add_argument("--ready-max-lag", type=int, metavar="N",
+                   help="/readyz fails while the source lag is above N records (Kafka) or bytes (files) "
+                        "(default 10000)")
     p.add_argument("--connect-timeout", type=_positive_float, metavar="SECONDS",
                    help="give up with an error when the Kafka brokers cannot be reached within this time "
                         "(default 30)")

@@ -22,6 +22,7 @@ Command-line options override both.
 
 from __future__ import annotations
 
+import ipaddress
 import os
 import tomllib
 from dataclasses import dataclass, field, fields
@@ -91,7 +92,24 @@ class ServiceConfig:
     score_interval : float
         Seconds between two feed rounds.
     metrics : str
-        ``HOST:PORT`` for the Prometheus text endpoint; empty disables it.
+        ``HOST:PORT`` of the HTTP listener: the Prometheus text endpoint and
+        the read API; empty disables both.
+    api_token : str
+        Bearer token the read API's ``/v1/`` paths require; empty: none.
+    api_allow_no_token : bool
+        Allow a non-loopback ``metrics`` address without a token (refused
+        otherwise).
+    api_max_k, api_max_nodes, api_max_request_bytes : int
+        Largest ``k`` of ``/v1/top``, most nodes in one ``/v1/scores``, longest
+        request target (bytes).
+    api_view_interval : float
+        Least seconds between two states published to the read API (each
+        costs a certificate: a pass over the nodes of every profile).
+    ready_max_lag : int
+        ``/readyz`` fails while the source lag (records for Kafka, bytes for
+        files) is above this.
+    health_stall_seconds : float
+        ``/healthz`` fails when the service loop has not turned for this long.
     log_format : str
         ``text`` or ``json``.
     stop_at_end : bool
@@ -127,6 +145,14 @@ class ServiceConfig:
     score_threshold: float = 0.01
     score_interval: float = 5.0
     metrics: str = "127.0.0.1:9464"
+    api_token: str = ""
+    api_allow_no_token: bool = False
+    api_max_k: int = 1000
+    api_max_nodes: int = 1000
+    api_max_request_bytes: int = 8192
+    api_view_interval: float = 0.5
+    ready_max_lag: int = 10_000
+    health_stall_seconds: float = 300.0
     log_format: str = "text"
     stop_at_end: bool = False
     connect_timeout: float = 30.0
@@ -169,7 +195,25 @@ class ServiceConfig:
                 parse_address(self.metrics)
             except ValueError as exc:
                 raise ConfigError(f"metrics: {exc}") from None
+        self._validate_api()
         return self
+
+    def _validate_api(self) -> None:
+        for name in ("api_max_k", "api_max_nodes", "api_max_request_bytes"):
+            if getattr(self, name) < 1:
+                raise ConfigError(f"{name} must be at least 1, got {getattr(self, name)}")
+        if not self.api_view_interval >= 0:
+            raise ConfigError(f"api_view_interval must be >= 0 seconds, got {self.api_view_interval}")
+        if self.ready_max_lag < 0:
+            raise ConfigError(f"ready_max_lag must be >= 0, got {self.ready_max_lag}")
+        if not self.health_stall_seconds > 0:
+            raise ConfigError(f"health_stall_seconds must be > 0, got {self.health_stall_seconds}")
+        if not self.metrics:
+            return
+        host, _ = parse_address(self.metrics)  # checked above
+        if not is_loopback(host) and not self.api_token and not self.api_allow_no_token:
+            raise ConfigError(f"metrics {self.metrics!r}: the read API would answer on a non-loopback address "
+                              f"without a token; set api_token (RANKTIDE_API_TOKEN) or api_allow_no_token = true")
 
     def targets(self) -> dict:
         """The engine's settle targets (``None`` where a setting is 0: off)."""
@@ -180,7 +224,23 @@ class ServiceConfig:
         """The settings with secret values replaced, for logs."""
         out = {f.name: getattr(self, f.name) for f in fields(self)}
         out["kafka"] = redact(self.kafka)
+        if self.api_token:
+            out["api_token"] = "***"
         return out
+
+
+def is_loopback(host: str) -> bool:
+    """True for a loopback address (``127.0.0.0/8``, ``::1``, ``localhost``) or an empty host.
+
+    Other host names count as not loopback: they are not resolved here.
+    """
+    host = host.strip("[]")
+    if host in ("", "localhost"):
+        return True
+    try:
+        return ipaddress.ip_address(host).is_loopback
+    except ValueError:
+        return False
 
 
 def parse_address(text: str) -> tuple[str, int]:

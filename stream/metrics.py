@@ -1,4 +1,4 @@
-"""Service metrics in the Prometheus text exposition format, served over HTTP."""
+"""Service metrics in the Prometheus text exposition format, served over HTTP with the read API."""
 
 from __future__ import annotations
 
@@ -7,6 +7,10 @@ import threading
 import time
 from dataclasses import dataclass, field
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    from ranktide.stream.api import ReadApi
 
 log = logging.getLogger("ranktide.metrics")
 
@@ -26,6 +30,9 @@ class Metrics:
     bounds: dict[str, float] = field(default_factory=dict)
     rtol_reached: dict[str, float] = field(default_factory=dict)
     lag: dict[str, int] = field(default_factory=dict)
+    api_requests: int = 0
+    api_cpu_seconds: float = 0.0
+    _api_lock: threading.Lock = field(default_factory=threading.Lock)
     _rate_window: list[tuple[float, int, int]] = field(default_factory=list)
 
     def record_batch(self, applied: int, rejected: int) -> None:
@@ -42,6 +49,12 @@ class Metrics:
         self.last_snapshot = created
         self.snapshot_seconds = seconds
         self.snapshots += 1
+
+    def record_request(self, cpu_seconds: float) -> None:
+        """One read API request answered, with the CPU time its thread spent on it."""
+        with self._api_lock:
+            self.api_requests += 1
+            self.api_cpu_seconds += cpu_seconds
 
     def rates(self) -> tuple[float, float]:
         """Events applied and rejected per second over the last minute."""
@@ -72,6 +85,12 @@ class Metrics:
             "# HELP ranktide_score_feed_messages_total Messages sent on the score-change feed.",
             "# TYPE ranktide_score_feed_messages_total counter",
             f"ranktide_score_feed_messages_total {self.feed_sent}",
+            "# HELP ranktide_api_requests_total Read API requests answered (any status).",
+            "# TYPE ranktide_api_requests_total counter",
+            f"ranktide_api_requests_total {self.api_requests}",
+            "# HELP ranktide_api_cpu_seconds_total CPU time the listener's threads spent answering the read API.",
+            "# TYPE ranktide_api_cpu_seconds_total counter",
+            f"ranktide_api_cpu_seconds_total {self.api_cpu_seconds:.6f}",
             "# HELP ranktide_certified_bound Certified bound on the normalised L1 error.",
             "# TYPE ranktide_certified_bound gauge",
         ]
@@ -109,21 +128,59 @@ class Metrics:
         return "\n".join(lines) + "\n"
 
 
-def start_metrics_server(address: str, metrics: Metrics) -> ThreadingHTTPServer | None:
-    """Serve ``GET /metrics`` on ``HOST:PORT`` in a daemon thread (port 0 picks a free one)."""
+def start_metrics_server(address: str, metrics: Metrics, api: "ReadApi | None" = None) -> ThreadingHTTPServer | None:
+    """Serve ``GET /metrics`` (and the read API's paths) on ``HOST:PORT`` in a daemon thread.
+
+    Port 0 picks a free one. Other methods than GET and HEAD get 405, a
+    request with a body 413.
+    """
     host, _, port = address.rpartition(":")
 
     class Handler(BaseHTTPRequestHandler):
-        def do_GET(self) -> None:  # noqa: N802 - the http.server name
-            if self.path.split("?")[0] not in ("/metrics", "/"):
-                self.send_error(404, "only /metrics is served")
-                return
-            body = metrics.render().encode()
-            self.send_response(200)
-            self.send_header("Content-Type", "text/plain; version=0.0.4; charset=utf-8")
+        protocol_version = "HTTP/1.1"  # keep-alive: a poller reuses its connection
+        timeout = 10  # seconds an idle or slow connection may hold its thread
+        disable_nagle_algorithm = True  # headers and body go out in two writes: no 40 ms delayed-ACK wait
+
+        def _send(self, status: int, body: bytes, content_type: str, headers: dict, head: bool) -> None:
+            self.send_response(status)
+            self.send_header("Content-Type", content_type)
             self.send_header("Content-Length", str(len(body)))
+            self.send_header("Cache-Control", "no-store")
+            for key, value in headers.items():
+                self.send_header(key, value)
             self.end_headers()
-            self.wfile.write(body)
+            if not head:
+                self.wfile.write(body)
+
+        def _get(self, head: bool) -> None:
+            if self.headers.get("Content-Length", "0").strip() != "0" or self.headers.get("Transfer-Encoding"):
+                self.close_connection = True
+                self._send(413, b'{"error":"a GET takes no body","status":413}\n', "application/json", {}, head)
+                return
+            path = self.path.split("?")[0]
+            if path in ("/metrics", "/"):
+                body = metrics.render().encode()
+                self._send(200, body, "text/plain; version=0.0.4; charset=utf-8", {}, head)
+            elif api is not None:
+                started = time.thread_time()
+                r = api.handle(self.path, self.headers)
+                self._send(r.status, r.body, r.content_type, r.headers, head)
+                metrics.record_request(time.thread_time() - started)
+            else:
+                self._send(404, b"only /metrics is served\n", "text/plain; charset=utf-8", {}, head)
+
+        def do_GET(self) -> None:  # noqa: N802 - the http.server name
+            self._get(head=False)
+
+        def do_HEAD(self) -> None:  # noqa: N802
+            self._get(head=True)
+
+        def _refuse(self) -> None:
+            self.close_connection = True
+            self._send(405, b'{"error":"only GET and HEAD are served","status":405}\n', "application/json",
+                       {"Allow": "GET, HEAD"}, False)
+
+        do_POST = do_PUT = do_DELETE = do_PATCH = do_OPTIONS = _refuse  # noqa: N815
 
         def log_message(self, fmt: str, *args) -> None:
             log.debug(fmt, *args)
@@ -133,6 +190,7 @@ def start_metrics_server(address: str, metrics: Metrics) -> ThreadingHTTPServer 
     except OSError as exc:
         log.warning("metrics endpoint %s not started: %s", address, exc)
         return None
+    server.daemon_threads = True
     threading.Thread(target=server.serve_forever, daemon=True, name="metrics").start()
-    log.info("metrics on http://%s:%d/metrics", *server.server_address[:2])
+    log.info("metrics%s on http://%s:%d/", " and read API" if api is not None else "", *server.server_address[:2])
     return server

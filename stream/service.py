@@ -33,8 +33,10 @@ from pathlib import Path
 import numpy as np
 
 from ranktide.solver import Ranker
+from ranktide.stream.api import ApiSettings, LiveState, ReadApi, build_view, positions_distance
 from ranktide.stream.config import ServiceConfig
 from ranktide.stream.events import Limits
+from ranktide.stream.logs import seed_personalizations
 from ranktide.stream.metrics import Metrics, start_metrics_server
 from ranktide.stream.rootlock import RootLock, RootLocked
 from ranktide.stream.snapshots import (Counters, SnapshotError, check_writable, load_latest, prune,
@@ -42,6 +44,9 @@ from ranktide.stream.snapshots import (Counters, SnapshotError, check_writable, 
 from ranktide.stream.sources import Source, SourceChunk, kafka_config, open_source
 
 log = logging.getLogger("ranktide.service")
+
+#: A view is published at most once per this many times the cost of the last one.
+VIEW_COST_FACTOR = 50
 
 #: Allocations between young-generation collections while the service runs
 #: (Python's default is 700).
@@ -189,6 +194,10 @@ class Service:
         self._last_snapshot = time.monotonic()
         self._unsettled = False  # events applied since the last settle
         self._settled_at = time.monotonic()
+        self.live = LiveState()  # what the read API answers from (see stream/api.py)
+        self._view_due = False   # state or positions moved since the last published view
+        self._views = 0
+        self._next_view = 0.0    # monotonic time before which no view is published (their cost)
 
     # -------------------------------------------------------------- lifecycle
     def request_stop(self, *_args) -> None:
@@ -204,8 +213,6 @@ class Service:
         snap = load_latest(self.out)
         if snap is None:
             self.ranker = Ranker(damping=self.cfg.damping, **self.cfg.targets())
-            from ranktide.replay.replay import seed_personalizations
-
             seed_personalizations(self.ranker, {k: Path(v) for k, v in self.cfg.personalizations.items()})
             self.counters = Counters()
             rejects.truncate(0)
@@ -242,11 +249,18 @@ class Service:
         if self.source_is_kafka:
             # the previous owner gives the lock back when it hands over; wait for it
             self._lock_root(wait=ROOT_LOCK_WAIT)
+        self.live.phase = "restoring"
         self.source.seek(self._restore(rejects))
         self._owner = True
         self._events_at_snapshot = self._seen()
         self.metrics.records_since_snapshot = 0
         self._last_snapshot = time.monotonic()
+        self._unsettled = self.ranker.engine.n_nodes > 0  # an empty engine has nothing to settle
+        self._view_due = True
+        self._settle()  # publishes the restored state
+        self.metrics.lag = self.source.lag()
+        self.live.lag = self.metrics.lag
+        self.live.phase = "running"
 
     def _hand_over(self, rejects: RejectsSink) -> None:
         """Ownership is going: make everything applied durable, then stop consuming."""
@@ -258,6 +272,8 @@ class Service:
         self._owner = False
         self.ranker = None
         self._unlock_root()
+        self.live.view = None
+        self.live.phase = "waiting for ownership"
 
     def run(self) -> int:
         """Run until stopped; return the process exit code."""
@@ -277,10 +293,29 @@ class Service:
         rejects = RejectsSink(cfg.rejects, self.out, cfg.kafka, bootstrap)
         self.source = open_source(cfg.source, cfg.group, cfg.kafka, self.limits, cfg.poll_records,
                                   cfg.file_chunk_bytes, finite=cfg.stop_at_end)
+        # the listener comes first, so that probes are answered (503) while restoring
+        server = start_metrics_server(cfg.metrics, self.metrics, ReadApi(self.live, self.api_settings())) \
+            if cfg.metrics else None
+        try:
+            return self._run(rejects, bootstrap)
+        finally:
+            if server is not None:
+                server.shutdown()
+                server.server_close()
+
+    def api_settings(self) -> ApiSettings:
+        cfg = self.cfg
+        return ApiSettings(token=cfg.api_token, max_k=cfg.api_max_k, max_nodes=cfg.api_max_nodes,
+                           max_request_bytes=cfg.api_max_request_bytes, ready_max_lag=cfg.ready_max_lag,
+                           stall_seconds=cfg.health_stall_seconds)
+
+    def _run(self, rejects: RejectsSink, bootstrap: str | None) -> int:
+        cfg = self.cfg
         lock = None
         if bootstrap:
             from ranktide.stream.sources import OwnerLock
 
+            self.live.phase = "waiting for ownership"
             lock = OwnerLock(bootstrap, cfg.group, cfg.owner_topic or f"{cfg.group}.owner", cfg.kafka,
                              on_lost=lambda: self._hand_over(rejects))
             log.info("waiting to own the graph (group %s)", cfg.group)
@@ -288,7 +323,6 @@ class Service:
             self._take_over(rejects)
         feed = ScoreFeed(cfg.score_topic, bootstrap, cfg.kafka, cfg.score_threshold, cfg.score_interval) \
             if cfg.score_topic and bootstrap else None
-        server = start_metrics_server(cfg.metrics, self.metrics) if cfg.metrics else None
         thresholds = gc.get_threshold()
         # the Kafka client makes one object per message: with the default thresholds the
         # collector runs hundreds of times per batch over objects that all live on
@@ -296,6 +330,7 @@ class Service:
         gc.set_threshold(GC_YOUNG_THRESHOLD, *thresholds[1:])
         try:
             while not self._stop.is_set():
+                self.live.turned(self.metrics.lag, self._behind())
                 if lock is not None and not self._follow_lock(lock, rejects):
                     continue
                 chunk = self.source.poll(timeout=0.5)
@@ -313,6 +348,7 @@ class Service:
                 if cfg.stop_at_end and chunk is None and self.source.at_end():
                     log.info("source exhausted: stopping")
                     break
+            self.live.phase = "stopping"
             if self._owner:
                 self._snapshot(rejects, reason="final")  # settles first
                 if feed is not None:
@@ -332,8 +368,6 @@ class Service:
             if lock is not None:
                 lock.close()
             self.source.close()
-            if server is not None:
-                server.shutdown()
             self._unlock_root()
         return 0
 
@@ -362,23 +396,63 @@ class Service:
             self.counters.events_applied += len(part)
             self._unsettled = True
             if time.monotonic() - self._settled_at >= self.cfg.settle_interval:
-                self._settle()
+                self._settle(publish=False)  # the chunk is not all applied: its positions would lie
         self.counters.events_rejected += len(chunk.parsed.reasons)
         self.metrics.record_batch(len(batch), len(chunk.parsed.reasons))
         self.metrics.records_since_snapshot = self._seen() - self._events_at_snapshot
+
+        self._view_due = True
+        if not self._unsettled and time.monotonic() >= self._next_view:
+            self._publish()  # the chunk ended with a settle: a consistent state to show
 
     def _seen(self) -> int:
         """Records read so far (applied or rejected), over the whole history of the root."""
         return self.counters.events_applied + self.counters.events_rejected
 
-    def _settle(self) -> None:
-        """Bring every profile within the tolerance (scores are fresh again)."""
+    def _settle(self, publish: bool = True) -> None:
+        """Bring every profile within the tolerance (scores are fresh again).
+
+        With ``publish``, every chunk taken from the source is applied, so the
+        settled state and the source positions agree: the read API gets it.
+        """
         if self._unsettled:
             # the certified figures are exported at publish points (snapshots): a certificate is
             # one pass over the nodes, too much for every settle of a small batch
             self.metrics.push_edges += self.ranker.settle().edge_touches
             self._unsettled = False
         self._settled_at = time.monotonic()
+        if publish and self._view_due and time.monotonic() >= self._next_view:
+            self._publish()
+
+    def _behind(self) -> int:
+        """Source units (bytes, records) taken since the published view: part of the lag readers see."""
+        view = self.live.view
+        if view is None or not self._view_due or self.source is None:
+            return 0
+        return positions_distance(self.source.positions(), view.positions)
+
+    def _publish(self, certificates: dict | None = None) -> None:
+        """Hand the read API the settled state with its certificates (this thread, between batches).
+
+        A certificate is a pass over the nodes of every profile: views are
+        published at most every ``api_view_interval`` seconds, and at most
+        once per ``VIEW_COST_FACTOR`` times what the last one cost.
+        """
+        started = time.monotonic()
+        eng = self.ranker.engine
+        if certificates is None and eng.n_nodes == 0:  # nothing to settle
+            certificates = {name: eng.certificate(name) for name in eng.profiles}
+        elif certificates is None:
+            certificates = eng.settle_certified()
+            self._unsettled = False
+            self.metrics.bounds = {p: c.l1_bound for p, c in certificates.items()}
+            self.metrics.rtol_reached = {p: max(c.rtol_reached, c.absolute_reached) for p, c in certificates.items()}
+        self._views += 1
+        self.live.view = build_view(self._views, self.ranker, self.counters.as_dict(), self.source.positions(),
+                                    certificates)
+        self._view_due = False
+        now = time.monotonic()
+        self._next_view = now + max(self.cfg.api_view_interval, VIEW_COST_FACTOR * (now - started))
 
     def _snapshot(self, rejects: RejectsSink, reason: str = "interval") -> Path:
         started = time.perf_counter()
@@ -392,6 +466,9 @@ class Service:
         certificates = self.ranker.engine.last_certificates
         self.metrics.bounds = {p: c.l1_bound for p, c in certificates.items()}
         self.metrics.rtol_reached = {p: max(c.rtol_reached, c.absolute_reached) for p, c in certificates.items()}
+        self.live.last_snapshot = {"name": path.name, "written_at": datetime.now(timezone.utc).isoformat(
+            timespec="milliseconds")}
+        self._publish(certificates)  # those of the snapshot's own settle
         self.source.commit(positions)
         removed = prune(self.out, self.cfg.keep_snapshots)
         self._dirty = False

@@ -234,7 +234,7 @@ def _finite(x: float) -> float | None:
     return float(x) if np.isfinite(x) else None
 
 
-def _contract_facts(cert: Certificate, is_global: bool) -> dict:
+def contract_facts(cert: Certificate, is_global: bool) -> dict:
     """The per-node contract a profile's published scores meet (manifest ``profiles``)."""
     unlisted = cert.bounds[cert.scores == 0.0]
     return {
@@ -302,7 +302,7 @@ def write_snapshot(
             "edges": eng.n_edges,
             "profiles": {
                 name: {"estimate_sum": float(eng.P[k, : eng.n_nodes].sum()),
-                       **_contract_facts(certificates[name], k == 0)}
+                       **contract_facts(certificates[name], k == 0)}
                 for k, name in enumerate(eng.profiles)
             },
             "files": files,

@@ -24,11 +24,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable, Protocol
 
-import numpy as np
-import pyarrow as pa
-
-from ranktide.replay.logs import LogError, read_log
-from ranktide.stream.events import EventBatch, Limits, Parsed, parse_json_records, validate_table
+from ranktide.stream.events import Limits, SourceChunk, decode_values, is_arrow_message
+from ranktide.stream.logs import LogError, read_log
 
 log = logging.getLogger("ranktide.sources")
 
@@ -100,28 +97,6 @@ def wait_for_brokers(bootstrap: str, properties: dict[str, str], timeout: float)
         raise SourceError(f"cannot reach the Kafka brokers {bootstrap} within {timeout:g} s "
                           f"(connect_timeout): {reason}") from None
 
-#: Header that marks a Kafka message holding an Arrow IPC stream of events.
-ARROW_CONTENT_TYPE = "application/vnd.apache.arrow.stream"
-
-
-@dataclass
-class SourceChunk:
-    """Events taken from a source in one poll.
-
-    Attributes
-    ----------
-    parsed : Parsed
-        Valid events and rejects.
-    reject_places : list of dict
-        For each reject (aligned with ``parsed.reasons``): where it came from
-        (file and line, or topic, partition and offset) and its raw text.
-    records : int
-        Records (lines or messages) consumed, valid or not.
-    """
-
-    parsed: Parsed
-    reject_places: list[dict] = field(default_factory=list)
-    records: int = 0
 
 
 class Source(Protocol):
@@ -269,73 +244,8 @@ def decode_messages(messages: list, limits: Limits) -> SourceChunk:
         m = messages[i]
         return {"topic": m.topic(), "partition": m.partition(), "offset": m.offset()}
 
-    arrow = [bool(m.headers()) and _is_arrow(m) for m in messages]
+    arrow = [bool(m.headers()) and is_arrow_message(m) for m in messages]
     return decode_values([m.value() for m in messages], arrow, place, limits)
-
-
-def decode_values(values: list, is_arrow: list[bool], place, limits: Limits) -> SourceChunk:
-    """Parse message values in order: runs of JSON values, and Arrow IPC streams.
-
-    Used for live messages and for recorded logs alike, so that a replay of a
-    recording decides every record exactly as the service did. ``place(i)``
-    gives the origin of value ``i`` (asked for rejects only).
-    """
-    parts: list[Parsed] = []
-    reject_places: list[dict] = []
-    reject_index: list[int] = []
-    valid_index: list[np.ndarray] = []
-    records = 0
-    i = 0
-    any_arrow = any(is_arrow)
-    while i < len(values):
-        if any_arrow and is_arrow[i]:
-            parsed, n = _decode_arrow(values[i], limits)
-            reject_places += [{**place(i), "row": int(r), "record": ""} for r in parsed.rejected_rows]
-            reject_index += [i] * len(parsed.rejected_rows)
-            valid_index.append(np.full(len(parsed.batch), i, dtype=np.int64))
-            i += 1
-        else:
-            j = i + 1
-            while j < len(values) and not (any_arrow and is_arrow[j]):
-                j += 1
-            run = values[i:j]
-            if None in run:
-                run = [v if v is not None else b"" for v in run]
-            parsed, n = parse_json_records(run, limits), j - i
-            reject_places += [{**place(i + int(r)), "record": _text(run[r])} for r in parsed.rejected_rows]
-            reject_index += [i + int(r) for r in parsed.rejected_rows]
-            valid_index.append(i + parsed.valid_rows)
-            i = j
-        parts.append(parsed)
-        records += n
-    batch = parts[0].batch if len(parts) == 1 else EventBatch.concat([p.batch for p in parts])
-    reasons = [r for p in parts for r in p.reasons]
-    # rows are message indices (an Arrow message holds many events)
-    valid = np.concatenate(valid_index) if valid_index else np.zeros(0, np.int64)
-    merged = Parsed(batch, valid.astype(np.int64), np.array(reject_index, dtype=np.int64), reasons)
-    return SourceChunk(merged, reject_places, records)
-
-
-def _is_arrow(msg) -> bool:
-    for key, value in msg.headers() or []:
-        if key.lower() == "content-type" and value is not None and value.decode("latin-1").strip() == ARROW_CONTENT_TYPE:
-            return True
-    return False
-
-
-def _decode_arrow(value: bytes | None, limits: Limits) -> tuple[Parsed, int]:
-    try:
-        table = pa.ipc.open_stream(value or b"").read_all()
-    except pa.ArrowException as exc:
-        empty = validate_table(pa.table({}), limits)
-        empty.reasons.append(f"not an Arrow IPC stream: {exc}")
-        empty.rejected_rows = np.zeros(1, np.int64)
-        return empty, 1
-    return validate_table(table, limits), table.num_rows
-
-
-def _text(value: bytes) -> str:
-    return value[:2000].decode("utf-8", "replace")
 
 
 @dataclass

@@ -64,7 +64,22 @@ class Stream:
         g = nx.DiGraph()
         g.add_nodes_from(self.nodes)
         g.add_weighted_edges_from((s, d, w) for (s, d), w in self.edges.items())
-        return nx.pagerank(g, alpha=damping, tol=1e-13, max_iter=10_000)
+        return nx.pagerank(g, alpha=damping, tol=REFERENCE_TOL, max_iter=10_000)
+
+
+#: NetworkX stops when one iteration moves the vector by less than N * tol in L1.
+REFERENCE_TOL = 1e-13
+
+
+def reference_error(n: int, damping: float) -> float:
+    """A bound on NetworkX's own L1 error when it stops: the last step, N * tol, times d / (1 - d).
+
+    Power iteration contracts by ``d`` per step, so the distance to the
+    solution is at most ``d / (1 - d)`` times the last step. A state certified
+    tighter than that (a settle that reaches the rounding floor) is checked
+    only to the reference's accuracy.
+    """
+    return n * REFERENCE_TOL * damping / (1.0 - damping)
 
 
 def newest_snapshot(root: Path) -> Path:
@@ -89,7 +104,8 @@ def check_snapshot_against(stream: Stream, snap: Path, tolerance: float | None =
     assert set(ours) == set(ref)
     for r in rows:
         error = abs(r["score"] - ref[r["node"]])
-        assert error <= r["error_bound"] + 1e-12, f"node {r['node']}: error {error} above its bound {r['error_bound']}"
+        assert error <= r["error_bound"] + reference_error(len(ref), manifest["damping"]), \
+            f"node {r['node']}: error {error} above its bound {r['error_bound']}"
         if manifest.get("rtol"):
             assert error <= manifest["rtol"] * ref[r["node"]], f"node {r['node']}: relative error above rtol"
     if tolerance is not None:

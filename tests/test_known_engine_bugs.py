@@ -125,3 +125,29 @@ def test_bound_holds_after_a_seed_weight_goes_up_and_back() -> None:
     model.seeds["trusted"] = {"a": 0.3, "c": 1.0}
     error = l1_distance(scores_by_name(ranker, "trusted"), nx_pagerank(model, "trusted"))
     assert error <= ranker.certified_bound("trusted")
+
+
+def test_settling_an_empty_engine_does_not_make_later_settles_dearer() -> None:
+    """Settle an engine with no node, then load a graph and settle: the work must be what it is without.
+
+    ``Engine.settle`` on an empty engine used to lower the global threshold
+    down its ladder to about 5e-23 (the sum shift of an empty estimate is
+    not a number), and thresholds only moved down, so every later settle
+    worked to the rounding floor: 22 times the edge touches of the same
+    settle on an engine that was not settled empty.
+    """
+    import numpy as np
+
+    rng = np.random.default_rng(4)
+    src = [f"n{i}" for i in rng.integers(2000, size=20_000)]
+    dst = [f"n{i}" for i in (rng.pareto(1.3, size=20_000) * 5).astype(int) % 2000]
+    touches = []
+    for settle_empty_first in (False, True):
+        ranker = Ranker(tolerance=1e-6)
+        if settle_empty_first:
+            ranker.settle()
+        ranker.apply(EventBatch.edges(src, dst))
+        ranker.settle()
+        ranker.apply(EventBatch.edges(src[:50], dst[50:100]))
+        touches.append(ranker.settle().edge_touches)
+    assert touches[1] <= 2 * max(touches[0], 1), touches

@@ -235,7 +235,7 @@ def test_a_csv_log_with_iso_times_and_bad_cells(tmp_path: Path) -> None:
 
 
 def test_row_count_hint_reads_the_parquet_footer_only(random_log, tmp_path: Path) -> None:
-    from ranktide.replay.logs import row_count_hint
+    from ranktide.stream.logs import row_count_hint
 
     path, _ = random_log
     table = pa.table({"op": ["insert"] * 3, "src": ["a", "b", "c"], "dst": ["b", "c", "a"]})

@@ -17,7 +17,7 @@ import pyarrow as pa
 import pytest
 from confluent_kafka import Consumer, Producer
 
-from ranktide.stream.sources import ARROW_CONTENT_TYPE
+from ranktide.stream.events import ARROW_CONTENT_TYPE
 from stream_helpers import (Stream, check_snapshot_against, free_port, newest_snapshot, ranktide, sigterm_and_check,
                             wait_until_counted)
 

@@ -1,4 +1,9 @@
-"""Recorded event logs: JSON Lines, Parquet and CSV, read in bounded chunks.
+"""Event logs and seeds files: JSON Lines, Parquet and CSV logs read in bounded chunks.
+
+The one place that reads event files: the service's file source follows logs
+with it, ``ranktide replay`` replays them, and recordings (``ranktide
+record``) are decoded here with the service's own message decoding
+(:func:`stream.events.decode_values`).
 
 Whatever the log's size, at most one chunk (a few MiB of text or
 ``batch_rows`` rows) is held at a time. Each chunk is parsed and validated
@@ -23,7 +28,10 @@ import pyarrow.compute as pc
 import pyarrow.csv as pcsv
 import pyarrow.parquet as pq
 
-from ranktide.stream.events import FIELDS, Limits, Parsed, ts_millis, parse_json_records, validate_table
+from ranktide.solver import EventBatch, Ranker
+from ranktide.stream.events import (
+    ARROW_CONTENT_TYPE, FIELDS, Limits, Parsed, decode_values, parse_json_records, ts_millis, validate_table,
+)
 
 CHUNK_BYTES = 8 << 20
 
@@ -83,8 +91,6 @@ class LogChunk:
 
 
 def _take(batch, rows: np.ndarray):
-    from ranktide.solver import EventBatch
-
     idx = pa.array(rows)
     return EventBatch(batch.op[rows], batch.src.take(idx), batch.dst.take(idx), batch.weight[rows], batch.ts[rows])
 
@@ -272,8 +278,6 @@ def _convert_cells(cells: list, kind) -> tuple[list, list[int]]:
 
 def _recorded_chunk(table: pa.Table, first_row: int, limits: Limits) -> LogChunk:
     """Rows of a recording (``ranktide record``): message values decoded as the service does."""
-    from ranktide.stream.sources import ARROW_CONTENT_TYPE, decode_values
-
     values = table["value"].to_pylist()
     kinds = table["content_type"].to_pylist() if "content_type" in table.column_names else [None] * len(values)
     cols = {name: table[name].to_pylist() for name in ("topic", "partition", "offset") if name in table.column_names}
@@ -392,3 +396,40 @@ def _csv_chunk(table: pa.Table, bad: list[tuple[int, str, str]], next_line: int,
     sorted_lines = lines[order]
     end = max(int(sorted_lines[-1]) + 1, next_line)
     return LogChunk(parsed, sorted_lines, sorted_lines - 2, end - 2, end - 2, raw), end
+
+
+# ------------------------------------------------------------------ seeds files
+
+
+def read_seeds_file(path: Path) -> tuple[list[str], list[float]]:
+    """Seeds of a personalization: one node per line, optionally ``node,weight`` or ``node<TAB>weight``.
+
+    Blank lines and lines starting with ``#`` are skipped.
+    """
+    nodes, weights = [], []
+    try:
+        text = Path(path).read_text(encoding="utf-8")
+    except OSError as exc:
+        raise LogError(f"{path}: cannot read seeds file: {exc.strerror or exc}") from exc
+    for number, line in enumerate(text.splitlines(), 1):
+        line = line.strip()
+        if not line or line.startswith("#"):
+            continue
+        parts = [p.strip() for p in line.replace("\t", ",").split(",")]
+        try:
+            weight = float(parts[1]) if len(parts) > 1 and parts[1] else 1.0
+        except ValueError:
+            raise LogError(f"{path}:{number}: weight {parts[1]!r} is not a number") from None
+        if not weight >= 0 or weight == float("inf"):
+            raise LogError(f"{path}:{number}: seed weight must be a finite number >= 0")
+        nodes.append(parts[0])
+        weights.append(weight)
+    return nodes, weights
+
+
+def seed_personalizations(ranker: Ranker, personalizations: dict[str, Path]) -> None:
+    for name, path in personalizations.items():
+        nodes, weights = read_seeds_file(path)
+        ranker.add_profile(name)
+        if nodes:
+            ranker.apply(EventBatch.seeds(name, nodes, weights))
