@@ -9,6 +9,7 @@ real ``kill -9``. Scores are checked against NetworkX ``pagerank`` (see
 from __future__ import annotations
 
 import json
+import math
 import signal
 import socket
 import subprocess
@@ -167,7 +168,9 @@ def test_metrics_tell_an_idle_healthy_service_from_a_stale_one(tmp_path: Path) -
 
     written = json.loads((newest_snapshot(root) / "manifest.json").read_text())["created_at"]
     restarted = _follow(log, root, "--snapshot-interval", "0.2", "--metrics", f"127.0.0.1:{port}")
-    _wait_for(lambda: "ranktide_snapshot_age_seconds" in _scrape(port), what="the metrics endpoint")
+    # the endpoint answers while the service restores: wait until the restored snapshot counts
+    _wait_for(lambda: math.isfinite(_scrape(port).get("ranktide_snapshot_age_seconds", math.nan)),
+              what="the age of the restored snapshot")
     first = _scrape(port)
     # idle and healthy: nothing uncovered, and the age is that of the restored snapshot (not NaN)
     assert first["ranktide_records_since_snapshot"] == 0
