@@ -302,3 +302,164 @@ def run_audit(root: Path, snapshot: str | None, every: bool, k: int, as_json: bo
             print(f"ranktide audit: error: cannot write the picture {plot}: {exc.strerror or exc}", file=sys.stderr)
             return 3
     return 1 if failed else 0
+
+
+# ------------------------------------------------------------------ against a full recompute
+
+
+def _profile_vectors(table, manifest: dict, ids, name: str) -> tuple[np.ndarray, np.ndarray]:
+    """Scores and error bounds of profile ``name`` on ``ids`` (unlisted nodes: 0 and ``unlisted_bound``)."""
+    part = table.filter(pc.equal(table["profile"], name))
+    unlisted = manifest["profiles"][name].get("unlisted_bound")
+    n = len(ids)
+    scores = np.zeros(n)
+    bounds = np.full(n, math.inf if unlisted is None else float(unlisted))
+    rows = ids.intern(part["node"].combine_chunks())
+    scores[rows] = part["score"].to_numpy()
+    bounds[rows] = part["error_bound"].to_numpy()
+    return scores, bounds
+
+
+def _read_scores(path: Path) -> tuple[dict, object]:
+    from ranktide.stream.snapshots import read_manifest, verify
+
+    manifest = read_manifest(path)
+    verify(path, manifest)
+    table = pq.read_table(path / "scores.parquet")
+    if "error_bound" not in table.column_names:
+        raise SnapshotError(f"{path}: snapshot format {manifest.get('format')} has no error_bound column")
+    return manifest, table
+
+
+def compare_snapshots(live: Path, recomputed: Path) -> dict:
+    """Node by node: ``|live - recomputed| <= live error_bound + recomputed error_bound`` in every profile.
+
+    Both bounds are certified, so a difference beyond their sum proves one of
+    the two wrong. Returns the ``--json`` object; ``ok`` false names the
+    worst node of each failing profile.
+
+    Raises
+    ------
+    SnapshotError
+        When either snapshot fails its checksums or cannot be read.
+    """
+    from ranktide.solver.ids import NodeIds
+
+    live_m, live_t = _read_scores(live)
+    rec_m, rec_t = _read_scores(recomputed)
+    ids = NodeIds(live_t.filter(pc.equal(live_t["profile"], GLOBAL))["node"])
+    n = len(ids)
+    rec_nodes = rec_t.filter(pc.equal(rec_t["profile"], GLOBAL))["node"]
+    ids.intern(rec_nodes.combine_chunks())
+    problems = []
+    if len(ids) != n or len(rec_nodes) != n:
+        problems.append(f"the graphs differ: {len(ids) - n} nodes of the recompute are not in {live.name}, "
+                        f"{n - len(rec_nodes)} of its nodes are not in the recompute")
+    elif (live_m.get("edges"), live_m.get("damping")) != (rec_m.get("edges"), rec_m.get("damping")):
+        problems.append(f"the graphs differ: {live_m.get('edges')} edges (damping {live_m.get('damping')}) live, "
+                        f"{rec_m.get('edges')} (damping {rec_m.get('damping')}) recomputed")
+    profiles = {}
+    for name, facts in live_m["profiles"].items():
+        if name not in rec_m["profiles"]:
+            problems.append(f"profile {name} is missing from the recompute")
+            continue
+        a, ba = _profile_vectors(live_t, live_m, ids, name)
+        b, bb = _profile_vectors(rec_t, rec_m, ids, name)
+        diff = np.abs(a - b)
+        excess = diff - ((ba + bb) * (1 + 1e-9) + EXACT_TOLERANCE)
+        worst = int(np.argmax(excess)) if n else 0
+        threshold = facts.get("certified_threshold") or 0.0
+        certified = a >= threshold if threshold > 0 else a > 0
+        with np.errstate(divide="ignore", invalid="ignore"):
+            rel = np.where(b[certified] > 0, diff[certified] / b[certified], 0.0)
+        profiles[name] = {
+            "l1": float(diff.sum()),
+            "linf": float(diff.max(initial=0.0)),
+            "relative_error_certified": float(rel.max(initial=0.0)),
+            "rtol": live_m.get("rtol"),
+            "within_bounds": bool(n == 0 or excess[worst] <= 0.0),
+            "worst_node": ids.name(worst) if n else None,
+            "worst_difference": float(diff[worst]) if n else None,
+            "worst_allowed": float(ba[worst] + bb[worst]) if n else None,
+        }
+    return {
+        "snapshot": live.name,
+        "against": str(recomputed),
+        "recompute_engine": rec_m.get("engine"),
+        "recompute_iterations": rec_m.get("iterations"),
+        "nodes": n,
+        "edges": live_m.get("edges"),
+        "events_applied": live_m.get("events_applied"),
+        "problems": problems,
+        "ok": not problems and all(p["within_bounds"] for p in profiles.values()),
+        "profiles": profiles,
+    }
+
+
+def _describe_comparison(result: dict) -> list[str]:
+    lines = [f"audit of {result['snapshot']} against the recompute {result['against']} "
+             f"({result['recompute_engine']}, {result['recompute_iterations']} iterations): "
+             f"{result['nodes']:,} nodes, {result['edges']:,} edges"]
+    lines += [f"FAIL: {p}" for p in result["problems"]]
+    for name, p in result["profiles"].items():
+        verdict = "ok: every node within both bounds" if p["within_bounds"] else \
+            (f"FAIL: node {p['worst_node']} differs by {p['worst_difference']:.3e}, "
+             f"more than its two error_bounds together {p['worst_allowed']:.3e}")
+        rtol = f" (rtol {p['rtol']:g})" if p.get("rtol") else ""
+        lines.append(f"profile {name}: {verdict}")
+        lines.append(f"  measured drift: L1 {p['l1']:.3e}, L-inf {p['linf']:.3e}, largest relative difference of "
+                     f"the certified nodes {p['relative_error_certified']:.3e}{rtol}")
+    return lines
+
+
+def _snapshot_in(root: Path, snapshot: str | None) -> Path | None:
+    if (root / "manifest.json").is_file():
+        return root
+    dirs = snapshot_dirs(root)
+    if snapshot:
+        dirs = [d for d in dirs if d.name == snapshot]
+    return dirs[-1] if dirs else None
+
+
+def run_audit_against(root: Path, snapshot: str | None, against: Path | None, engine: str | None,
+                      as_json: bool, recompute_options: dict) -> int:
+    """``ranktide audit --against`` / ``--engine``: compare with a recompute; returns the exit code."""
+    import shutil
+    import tempfile
+
+    from ranktide.replay.recompute import RecomputeError, resolve_input, run_engine, settings_for
+
+    live = _snapshot_in(root, snapshot)
+    if live is None:
+        print(f"ranktide audit: error: {root}: no snapshot{f' named {snapshot}' if snapshot else ''}", file=sys.stderr)
+        return 2
+    scratch = None
+    try:
+        if against is None:
+            out = recompute_options.get("out")
+            if out is None:
+                out = scratch = Path(tempfile.mkdtemp(prefix="ranktide-recompute-"))
+            inp = resolve_input(str(live))
+            settings = settings_for(inp, recompute_options.get("rtol") or 1e-6, None, None, None, None)
+            recomputed = run_engine(inp, Path(out), settings, engine or "local", recompute_options.get("master"),
+                                    recompute_options.get("spark_conf") or {}, progress=not as_json)
+        else:
+            recomputed = _snapshot_in(against, None)
+            if recomputed is None:
+                print(f"ranktide audit: error: {against}: no snapshot", file=sys.stderr)
+                return 2
+        result = compare_snapshots(live, recomputed)
+    except RecomputeError as exc:
+        print(f"ranktide audit: error: {exc}", file=sys.stderr)
+        return exc.code
+    except SnapshotError as exc:
+        print(f"ranktide audit: FAIL: {exc}", file=sys.stderr)
+        return 1
+    finally:
+        if scratch is not None:
+            shutil.rmtree(scratch, ignore_errors=True)
+    print(json.dumps(result, indent=2) if as_json else "\n".join(_describe_comparison(result)))
+    if not result["ok"]:
+        worst = [f"{name}: node {p['worst_node']}" for name, p in result["profiles"].items() if not p["within_bounds"]]
+        print("ranktide audit: FAIL: " + "; ".join(result["problems"] + worst), file=sys.stderr)
+    return 0 if result["ok"] else 1

@@ -198,7 +198,9 @@ def describe_newest(root: Path, as_json: bool = False, name: str | None = None, 
     if as_json:
         emit_json(envelope(chosen, manifest=chosen.manifest))
     else:
-        print(text)
+        from ranktide.stream.recompute_job import describe_status
+
+        print("\n".join([text, *describe_status(chosen.path.parent)]))
     return 0
 
 

@@ -250,6 +250,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
         "score_topic": args.score_topic, "metrics": args.metrics,
         "log_format": "json" if args.log_json else None, "stop_at_end": True if args.stop_at_end else None,
         "max_id_length": args.max_id_length, "max_message_bytes": args.max_message_bytes,
+        "recompute_interval": args.recompute_interval, "recompute_engine": args.recompute_engine,
         "api_token": args.api_token, "api_allow_no_token": True if args.api_allow_no_token else None,
         "ready_max_lag": args.ready_max_lag,
         "connect_timeout": args.connect_timeout,
@@ -389,7 +390,7 @@ def _cmd_record(args: argparse.Namespace) -> int:
 
 
 def _cmd_audit(args: argparse.Namespace) -> int:
-    from ranktide.replay.audit import run_audit
+    from ranktide.replay.audit import run_audit, run_audit_against
     from ranktide.stream.snapshots import OutputError, check_writable
 
     if args.plot is not None:
@@ -398,6 +399,16 @@ def _cmd_audit(args: argparse.Namespace) -> int:
         except OutputError as exc:
             print(f"ranktide audit: error: {exc}", file=sys.stderr)
             return 3
+    if args.against is not None or args.engine is not None:
+        from ranktide.replay.recompute import RecomputeError, parse_spark_conf
+
+        try:
+            conf = parse_spark_conf(args.spark_conf)
+        except RecomputeError as exc:
+            print(f"ranktide audit: error: {exc}", file=sys.stderr)
+            return 2
+        options = {"rtol": args.rtol, "master": args.master, "spark_conf": conf, "out": args.recompute_out}
+        return run_audit_against(args.root, args.snapshot, args.against, args.engine, args.json, options)
     return run_audit(args.root, args.snapshot, args.all, args.k, args.json, args.plot)
 
 
@@ -516,6 +527,11 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--personalization", action="append", type=_personalization, metavar="NAME=SEEDS_FILE",
                    help="personalized profile seeded from a file when starting without a snapshot; may be repeated")
     p.add_argument("--stop-at-end", action="store_true", help="stop with a final snapshot when the source has no more")
+    p.add_argument("--recompute-interval", type=_non_negative_float, metavar="SECONDS",
+                   help="every SECONDS, recompute the newest snapshot's graph in a separate process and audit the "
+                        "scores against it (default 0: off)")
+    p.add_argument("--recompute-engine", choices=("local", "spark"),
+                   help="engine of the periodic recompute (default local; spark needs ranktide[spark])")
     p.add_argument("--log-json", action="store_true", help="structured logs, one JSON object per line")
     p.add_argument("--quiet", action="store_true", help="do not describe the final snapshot")
     p.set_defaults(func=_cmd_run)
@@ -549,7 +565,23 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("-k", type=_positive_int, default=100, help="size of the top set for overlap and Kendall tau (default 100)")
     p.add_argument("--json", action="store_true", help="print the results as JSON")
     p.add_argument("--plot", type=Path, metavar="FILE.png", help="plot measured error and bound against events applied")
+    p.add_argument("--against", type=Path, metavar="RECOMPUTED",
+                   help="compare node by node with this recomputed snapshot (folder or root, from 'ranktide "
+                        "recompute'): every difference must lie within the two error_bounds together")
+    p.add_argument("--engine", choices=("local", "spark"),
+                   help="recompute the snapshot's graph with this engine first (spark: for graphs too large for "
+                        "the in-memory audit), then compare as --against does")
+    p.add_argument("--rtol", type=_rtol, default=None,
+                   help="with --engine: the recompute's per-node contract (default 1e-6)")
+    p.add_argument("--master", help="with --engine spark: the Spark master URL (default local[*])")
+    p.add_argument("--spark-conf", action="append", metavar="KEY=VALUE", help="with --engine spark: a Spark setting")
+    p.add_argument("--recompute-out", type=Path, metavar="ROOT",
+                   help="with --engine: keep the recomputed snapshot under ROOT (default: a temporary folder)")
     p.set_defaults(func=_cmd_audit)
+
+    from ranktide.replay.recompute_options import add_parser as add_recompute_parser
+
+    add_recompute_parser(sub, add_engine_options, _personalization)
 
     p = sub.add_parser("demo", help="the built-in scenario end to end: consumer, snapshots, audit, pictures",
                        description="Generate a fictional package ecosystem whose dependencies change with releases "

@@ -114,6 +114,13 @@ class ServiceConfig:
         ``text`` or ``json``.
     stop_at_end : bool
         Stop (with a final snapshot) once the source has nothing more.
+    recompute_interval : float
+        Seconds between periodic full recomputes of the newest snapshot's
+        graph, each audited against the service's own scores (0: off).
+    recompute_engine : str
+        ``local`` (SciPy, in memory) or ``spark`` (``ranktide[spark]``).
+    recompute_master : str
+        Spark master URL for ``recompute_engine = "spark"`` (default ``local[*]``).
     connect_timeout : float
         Seconds to wait for the Kafka brokers at start before giving up
         with an error (exit code 2).
@@ -155,6 +162,9 @@ class ServiceConfig:
     health_stall_seconds: float = 300.0
     log_format: str = "text"
     stop_at_end: bool = False
+    recompute_interval: float = 0.0
+    recompute_engine: str = "local"
+    recompute_master: str = ""
     connect_timeout: float = 30.0
     personalizations: dict[str, str] = field(default_factory=dict)
     kafka: dict[str, str] = field(default_factory=dict)
@@ -178,6 +188,10 @@ class ServiceConfig:
             raise ConfigError(f"snapshot_interval must be > 0 seconds, got {self.snapshot_interval}")
         if self.keep_snapshots < 1:
             raise ConfigError(f"keep_snapshots must be at least 1, got {self.keep_snapshots}")
+        if not self.recompute_interval >= 0:
+            raise ConfigError(f"recompute_interval must be >= 0 seconds (0: off), got {self.recompute_interval}")
+        if self.recompute_engine not in ("local", "spark"):
+            raise ConfigError(f"recompute_engine must be local or spark, got {self.recompute_engine!r}")
         if self.log_format not in ("text", "json"):
             raise ConfigError(f"log_format must be text or json, got {self.log_format!r}")
         for name in ("micro_batch", "poll_records", "file_chunk_bytes", "max_id_length", "max_message_bytes"):

@@ -30,6 +30,13 @@ class Metrics:
     bounds: dict[str, float] = field(default_factory=dict)
     rtol_reached: dict[str, float] = field(default_factory=dict)
     lag: dict[str, int] = field(default_factory=dict)
+    recompute_last: float = 0.0
+    recompute_seconds: float = 0.0
+    recompute_ok: int | None = None
+    recompute_total: int = 0
+    recompute_failures: int = 0
+    recompute_error: dict[str, float] = field(default_factory=dict)
+    recompute_relative_error: dict[str, float] = field(default_factory=dict)
     api_requests: int = 0
     api_cpu_seconds: float = 0.0
     _api_lock: threading.Lock = field(default_factory=threading.Lock)
@@ -125,7 +132,41 @@ class Metrics:
             "# TYPE ranktide_snapshots_total counter",
             f"ranktide_snapshots_total {self.snapshots}",
         ]
-        return "\n".join(lines) + "\n"
+        return "\n".join(lines + self._recompute_lines()) + "\n"
+
+    def _recompute_lines(self) -> list[str]:
+        """The periodic full recomputes (``recompute_interval``)."""
+        lines = [
+            "# HELP ranktide_recompute_total Periodic full recomputes finished.",
+            "# TYPE ranktide_recompute_total counter",
+            f"ranktide_recompute_total {self.recompute_total}",
+            "# HELP ranktide_recompute_failures_total Recomputes that failed or found a score outside both bounds.",
+            "# TYPE ranktide_recompute_failures_total counter",
+            f"ranktide_recompute_failures_total {self.recompute_failures}",
+        ]
+        if self.recompute_ok is None:
+            return lines
+        lines += [
+            "# HELP ranktide_recompute_last_timestamp_seconds When the last recompute finished (Unix time).",
+            "# TYPE ranktide_recompute_last_timestamp_seconds gauge",
+            f"ranktide_recompute_last_timestamp_seconds {self.recompute_last:.3f}",
+            "# HELP ranktide_recompute_duration_seconds Time the last recompute and audit took.",
+            "# TYPE ranktide_recompute_duration_seconds gauge",
+            f"ranktide_recompute_duration_seconds {self.recompute_seconds:.3f}",
+            "# HELP ranktide_recompute_ok 1 when every score of the last audited snapshot lay within both bounds.",
+            "# TYPE ranktide_recompute_ok gauge",
+            f"ranktide_recompute_ok {self.recompute_ok}",
+            "# HELP ranktide_recompute_error Measured normalised L1 drift of the scores from the last recompute.",
+            "# TYPE ranktide_recompute_error gauge",
+        ]
+        lines += [f'ranktide_recompute_error{{profile="{p}"}} {v:.6g}' for p, v in sorted(self.recompute_error.items())]
+        lines += [
+            "# HELP ranktide_recompute_relative_error Largest measured relative drift of the certified nodes.",
+            "# TYPE ranktide_recompute_relative_error gauge",
+        ]
+        lines += [f'ranktide_recompute_relative_error{{profile="{p}"}} {v:.6g}'
+                  for p, v in sorted(self.recompute_relative_error.items())]
+        return lines
 
 
 def start_metrics_server(address: str, metrics: Metrics, api: "ReadApi | None" = None) -> ThreadingHTTPServer | None:

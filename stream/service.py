@@ -38,6 +38,7 @@ from ranktide.stream.config import ServiceConfig
 from ranktide.stream.events import Limits
 from ranktide.stream.logs import seed_personalizations
 from ranktide.stream.metrics import Metrics, start_metrics_server
+from ranktide.stream.recompute_job import RecomputeJob
 from ranktide.stream.rootlock import RootLock, RootLocked
 from ranktide.stream.snapshots import (Counters, SnapshotError, check_writable, load_latest, prune,
                                        write_snapshot)
@@ -323,6 +324,8 @@ class Service:
             self._take_over(rejects)
         feed = ScoreFeed(cfg.score_topic, bootstrap, cfg.kafka, cfg.score_threshold, cfg.score_interval) \
             if cfg.score_topic and bootstrap else None
+        recompute = RecomputeJob(self.out, cfg.recompute_interval, cfg.recompute_engine, cfg.recompute_master,
+                                 self.metrics)
         thresholds = gc.get_threshold()
         # the Kafka client makes one object per message: with the default thresholds the
         # collector runs hundreds of times per batch over objects that all live on
@@ -345,6 +348,7 @@ class Service:
                     self._settle()
                     self.metrics.feed_sent += feed.publish(self.ranker, self.source.positions())
                 self._snapshot_if_due(rejects)
+                recompute.tick()  # starts or collects a child process; never waits on it
                 if cfg.stop_at_end and chunk is None and self.source.at_end():
                     log.info("source exhausted: stopping")
                     break
@@ -365,6 +369,7 @@ class Service:
             gc.set_threshold(*thresholds)
             gc.unfreeze()
             self._closing = True
+            recompute.close()
             if lock is not None:
                 lock.close()
             self.source.close()

@@ -50,6 +50,8 @@ if TYPE_CHECKING:
 FORMAT = 2
 #: Formats this version reads (1 had no ``error_bound`` column and no per-node facts).
 READABLE_FORMATS = (1, 2)
+#: The data files of every snapshot (the manifest lists their sha256).
+SNAPSHOT_FILES = ("scores.parquet", "edges.parquet", "seeds.parquet")
 _NAME = re.compile(r"^snap-(\d{8})$")
 log = logging.getLogger("ranktide.snapshots")
 
@@ -227,6 +229,11 @@ def _tables(ranker: Ranker, certificates: dict[str, Certificate]) -> dict[str, p
     }
 
 
+def snapshot_tables(ranker: Ranker, certificates: dict[str, Certificate]) -> dict[str, pa.Table]:
+    """The three tables a snapshot of ``ranker`` holds, published with ``certificates``."""
+    return _tables(ranker, certificates)
+
+
 def _finite(x: float) -> float | None:
     """JSON has no infinity: an uncertified figure is written as null."""
     import numpy as np
@@ -269,6 +276,52 @@ def write_snapshot(
     import pyarrow.parquet as pq
 
     root = Path(root)
+    seq = None if sequence is None else int(sequence)
+    eng = ranker.engine
+    eng.recompute_residual()
+    certificates = eng.settle_certified()
+    tables = _tables(ranker, certificates)
+    manifest = {
+        "damping": eng.damping,
+        "rtol": eng.rtol,
+        "tolerance": eng.tolerance,
+        "certified_top": eng.certified_top,
+        "certified_bound": {name: _finite(c.l1_bound) for name, c in certificates.items()},
+        **counters.as_dict(),
+        "positions": positions,
+        "nodes": eng.n_nodes,
+        "edges": eng.n_edges,
+        "profiles": {
+            name: {"estimate_sum": float(eng.P[k, : eng.n_nodes].sum()),
+                   **contract_facts(certificates[name], k == 0)}
+            for k, name in enumerate(eng.profiles)
+        },
+    }
+
+    def fill(folder: Path) -> None:
+        for fname, table in tables.items():
+            pq.write_table(table, folder / fname, compression="zstd")
+
+    return write_prepared_snapshot(root, fill, manifest, seq, created_at)
+
+
+def write_prepared_snapshot(root: Path, fill, manifest: dict, sequence: int | None = None,
+                            created_at: datetime | None = None) -> Path:
+    """Write a snapshot whose three Parquet files ``fill(folder)`` puts into a fresh folder.
+
+    The atomic part of :func:`write_snapshot`, also used by writers outside the
+    engine (a full recompute, on Spark or in memory): this function adds
+    ``format``, ``sequence``, ``created_at`` and ``files`` (sha256 of each
+    file, read in chunks) to ``manifest``, fsyncs and renames.
+
+    Raises
+    ------
+    OutputError
+        When the root cannot be created or written, or ``fill`` leaves a file
+        missing; no ``snap-`` folder is left behind then (nor when ``fill``
+        raises).
+    """
+    root = Path(root)
     try:
         root.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
@@ -276,35 +329,21 @@ def write_snapshot(
     seq = next_sequence(root) if sequence is None else int(sequence)
     final = root / f"snap-{seq:08d}"
     partial = root / f".snap-{seq:08d}.partial"
-    eng = ranker.engine
-    eng.recompute_residual()
-    certificates = eng.settle_certified()
     try:
         _clear_partials(root)
         partial.mkdir()
+        fill(partial)
         files = {}
-        for fname, table in _tables(ranker, certificates).items():
-            pq.write_table(table, partial / fname, compression="zstd")
+        for fname in SNAPSHOT_FILES:
+            if not (partial / fname).is_file():
+                raise OutputError(f"cannot write snapshot {final}: {fname} was not written")
             _fsync_file(partial / fname)
             files[fname] = _sha256(partial / fname)
         manifest = {
+            **manifest,
             "format": FORMAT,
             "sequence": seq,
-            "damping": eng.damping,
-            "rtol": eng.rtol,
-            "tolerance": eng.tolerance,
-            "certified_top": eng.certified_top,
-            "certified_bound": {name: _finite(c.l1_bound) for name, c in certificates.items()},
-            **counters.as_dict(),
-            "positions": positions,
             "created_at": (created_at or datetime.now(timezone.utc)).isoformat(timespec="milliseconds"),
-            "nodes": eng.n_nodes,
-            "edges": eng.n_edges,
-            "profiles": {
-                name: {"estimate_sum": float(eng.P[k, : eng.n_nodes].sum()),
-                       **contract_facts(certificates[name], k == 0)}
-                for k, name in enumerate(eng.profiles)
-            },
             "files": files,
         }
         with open(partial / "manifest.json", "w", encoding="utf-8") as fh:
@@ -318,6 +357,9 @@ def write_snapshot(
     except OSError as exc:
         shutil.rmtree(partial, ignore_errors=True)
         raise OutputError(f"cannot write snapshot {final}: {exc.strerror or exc}") from exc
+    except BaseException:  # fill failed (a Spark job, an interrupt): no half snapshot stays behind
+        shutil.rmtree(partial, ignore_errors=True)
+        raise
     return final
 
 
