@@ -23,6 +23,7 @@ newer ones that fail their checksums are named and fail the audit too.
 
 from __future__ import annotations
 
+import json
 import math
 import sys
 from dataclasses import asdict, dataclass
