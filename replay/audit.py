@@ -13,9 +13,12 @@ to a certified 1e-12, on the snapshot's own edge set, and reports
 * top-k overlap and Kendall's tau on the exact top k;
 * the largest relative errors among the exact top k;
 * the drift of the residual: the bound the manifest states against the
-  bound recomputed exactly from the stored scores.
+  bound recomputed exactly from the stored scores, as an absolute figure and,
+  when the stated bound is above ``DRIFT_FLOOR``, relative to it.
 
 A failure (error above the bound, or a file failing its checksum) exits 1.
+Without ``--snapshot`` or ``--all`` the newest valid snapshot is audited;
+newer ones that fail their checksums are named and fail the audit too.
 """
 
 from __future__ import annotations
@@ -39,10 +42,20 @@ from ranktide.solver.metrics import (
     linf_error,
     top_k_overlap,
 )
-from ranktide.stream.snapshots import SnapshotError, load_snapshot, snapshot_dirs
+from ranktide.stream.snapshots import (
+    NoValidSnapshot,
+    SnapshotError,
+    is_snapshot_folder,
+    load_snapshot,
+    select_snapshot,
+    snapshot_dirs,
+)
 
 #: Certified error of the exact recompute itself; added to the bound when comparing.
 EXACT_TOLERANCE = 1e-12
+#: Stated bounds at or below this are rounding-level (often exactly 0, for a graph the
+#: engine solved exactly): a drift relative to them means nothing and is not given.
+DRIFT_FLOOR = 1e-12
 
 
 @dataclass
@@ -57,13 +70,26 @@ class ProfileAudit:
     kendall_tau_top_k: float
     largest_relative_errors: list[dict]
     recomputed_bound: float
-    residual_drift: float
+    residual_drift: float | None
+    residual_drift_relative: float | None
     nodes_within_bounds: bool | None = None
     worst_node: str | None = None
     worst_error: float | None = None
     worst_error_bound: float | None = None
     rtol: float | None = None
     relative_error_certified: float | None = None
+
+
+def residual_drift(stated: float, recomputed: float) -> tuple[float | None, float | None]:
+    """Absolute drift of the bound, and the drift relative to the stated bound.
+
+    The relative figure is None when the stated bound is at or below
+    ``DRIFT_FLOOR``; both are None when no L1 bound is stated (infinite).
+    """
+    if not math.isfinite(stated):
+        return None, None
+    drift = abs(recomputed - stated)
+    return drift, (drift / stated if stated > DRIFT_FLOOR else None)
 
 
 def audit_snapshot(path: Path, k: int = 100) -> dict:
@@ -87,6 +113,7 @@ def audit_snapshot(path: Path, k: int = 100) -> dict:
         k_row = eng.profile_index(name)
         recomputed = certified_bound(eng.P[k_row, :n], eng.R[k_row, :n])
         err = l1_error(stored, exact)
+        drift, relative = residual_drift(stated, recomputed)
         per_node = _per_node(path, manifest, ranker, name, stored, exact)
         l1_ok = err <= stated * (1 + 1e-9) + EXACT_TOLERANCE
         profiles[name] = asdict(ProfileAudit(
@@ -101,7 +128,8 @@ def audit_snapshot(path: Path, k: int = 100) -> dict:
                 for i, rel in largest_relative_errors(exact, stored, k)
             ],
             recomputed_bound=recomputed,
-            residual_drift=abs(recomputed - stated) / max(stated, 1e-300),
+            residual_drift=drift,
+            residual_drift_relative=relative,
             **per_node,
         ))
     return {
@@ -163,7 +191,7 @@ def _describe(result: dict) -> list[str]:
             f"profile {name}: {verdict}",
             f"  measured L1 {p['l1']:.3e}   L-inf {p['linf']:.3e}   certified bound {p['certified_bound']:.3e}",
             f"  top-{result['k']} overlap {p['top_k_overlap']:.4f}   Kendall tau on top-{result['k']} "
-            f"{p['kendall_tau_top_k']:.4f}   residual drift {p['residual_drift']:.2e}",
+            f"{p['kendall_tau_top_k']:.4f}   residual drift {_drift_text(p)}",
         ]
         if p.get("nodes_within_bounds") is not None:
             scope = "every node within its error_bound" if p["nodes_within_bounds"] else \
@@ -175,6 +203,14 @@ def _describe(result: dict) -> list[str]:
         if worst:
             lines.append(f"  largest relative errors in the top {result['k']}: {worst}")
     return lines
+
+
+def _drift_text(p: dict) -> str:
+    if p["residual_drift"] is None:
+        return "n/a (no L1 bound stated)"
+    if p["residual_drift_relative"] is None:
+        return f"{p['residual_drift']:.2e} absolute (stated bound {p['certified_bound']:.1e})"
+    return f"{p['residual_drift_relative']:.2e} relative"
 
 
 def plot_series(results: list[dict], path: Path) -> Path:
@@ -206,18 +242,42 @@ def plot_series(results: list[dict], path: Path) -> Path:
     return path
 
 
+def _targets(root: Path, snapshot: str | None, every: bool) -> tuple[list[Path], list[dict]]:
+    """The snapshot folders to audit, and the newer ones skipped for failing their checks.
+
+    Raises
+    ------
+    SnapshotError
+        No snapshot, no snapshot of that name, or none valid.
+    """
+    root = Path(root)
+    if is_snapshot_folder(root) or snapshot:
+        folder = root if is_snapshot_folder(root) else root / snapshot
+        if (snapshot and folder.name != snapshot) or not folder.is_dir():
+            raise SnapshotError(f"{root}: no snapshot named {snapshot}")
+        return [folder], []
+    if every:
+        dirs = snapshot_dirs(root)
+        if not dirs:
+            raise SnapshotError(f"{root}: no snapshot")
+        return dirs, []
+
+    def say(name: str, reason: str) -> None:
+        print(f"ranktide audit: FAIL: skipping {name}: {reason}", file=sys.stderr)
+
+    chosen = select_snapshot(root, on_skip=say)
+    return [chosen.path], [{"snapshot": name, "reason": reason} for name, reason in chosen.skipped]
+
+
 def run_audit(root: Path, snapshot: str | None, every: bool, k: int, as_json: bool, plot: Path | None) -> int:
     """``ranktide audit``; returns the exit code (1 on a failed check, 2 on unreadable input)."""
-    dirs = snapshot_dirs(root)
-    if snapshot:
-        dirs = [d for d in dirs if d.name == snapshot]
-    elif not every:
-        dirs = dirs[-1:]
-    if not dirs:
-        what = f"no snapshot named {snapshot}" if snapshot else "no snapshot"
-        print(f"ranktide audit: error: {root}: {what}", file=sys.stderr)
-        return 2
-    results, failed = [], False
+    try:
+        dirs, skipped = _targets(root, snapshot, every)
+    except SnapshotError as exc:
+        print(f"ranktide audit: error: {exc}", file=sys.stderr)
+        # snapshots that exist but all fail their checksums fail the audit
+        return 1 if isinstance(exc, NoValidSnapshot) else 2
+    results, failed = [], bool(skipped)
     for path in dirs:
         try:
             results.append(audit_snapshot(path, k))
@@ -229,7 +289,13 @@ def run_audit(root: Path, snapshot: str | None, every: bool, k: int, as_json: bo
         if not as_json:
             print("\n".join(_describe(results[-1])))
     if as_json:
-        print(json.dumps(results[0] if len(results) == 1 and not every else results, indent=2))
+        # the reading commands' style: one object; a single audit's keys, or every audit under 'audits'
+        from ranktide.replay.reading import emit_json  # infinite figures print as null
+
+        if every:
+            emit_json({"root": str(root), "audits": results})
+        elif results:
+            emit_json({**results[0], "skipped": skipped})
     if plot is not None and results:
         try:
             print(f"plot: {plot_series(results, plot)}", file=sys.stderr)

@@ -21,16 +21,23 @@ import pyarrow.parquet as pq
 from ranktide.replay.audit import audit_snapshot, plot_series
 from ranktide.replay.scenario import write_scenario
 from ranktide.stream.config import ServiceConfig
+from ranktide.stream.rootlock import RootLock, RootLocked
 from ranktide.stream.service import Service
-from ranktide.stream.snapshots import snapshot_dirs
+from ranktide.stream.snapshots import SnapshotError, snapshot_dirs
 
 
 def run_demo(out: Path, snapshot_events: int = 4000) -> int:
     """Run the demo into ``out``; print where everything is. Returns the exit code."""
     started = time.perf_counter()
     out = Path(out)
-    log_path = write_scenario(out / "scenario")
     root = out / "snapshots"
+    # refuse before writing anything when another process writes this root
+    try:
+        lock = RootLock.acquire(root, "ranktide demo")
+    except SnapshotError as exc:
+        print(f"ranktide demo: error: {exc}", file=sys.stderr)
+        return 2 if isinstance(exc, RootLocked) else 3
+    log_path = write_scenario(out / "scenario")
     _say(f"scenario log: {log_path} ({sum(1 for _ in open(log_path, 'rb')):,} lines)")
     cfg = ServiceConfig(
         source=f"file:{log_path}", out=str(root), stop_at_end=True, snapshot_events=snapshot_events,
@@ -38,7 +45,7 @@ def run_demo(out: Path, snapshot_events: int = 4000) -> int:
     ).validate()
     if snapshot_dirs(root):
         _say(f"{root} already holds snapshots: the consumer resumes after them")
-    code = Service(cfg).run()
+    code = Service(cfg, root_lock=lock).run()  # releases the lock when done
     if code != 0:
         return code
     dirs = snapshot_dirs(root)

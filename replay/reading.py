@@ -1,21 +1,125 @@
-"""Reading results: ``ranktide status``, ``top`` and ``score`` from the newest snapshot."""
+"""Reading results: ``ranktide status``, ``snapshots``, ``top`` and ``score``.
+
+Every command serves a snapshot only after its files pass their sha256
+checksums (:func:`~ranktide.stream.snapshots.select_snapshot`): by default
+the newest valid one, naming on standard error each newer one it skipped and
+why. Output is built in two steps so that columns can be added: a command
+makes plain records (one ``dict`` per row), and :func:`render_table` or
+:func:`emit_json` prints them.
+
+``--json`` style, common to these commands: one JSON object on standard
+output, indented by two spaces; ``snapshot`` names the folder served and
+``skipped`` lists ``{"snapshot", "reason"}`` for each newer one passed over;
+rows are a list of objects whose keys are the text columns' names; numbers
+are plain JSON numbers and a missing value is ``null``.
+"""
 
 from __future__ import annotations
 
 import json
+import math
 import sys
+from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
+from typing import TYPE_CHECKING, Callable
 
-from ranktide.stream.snapshots import SnapshotError, read_manifest, snapshot_dirs
+from ranktide.stream.snapshots import (
+    SnapshotError,
+    Selected,
+    inspect_snapshot,
+    is_snapshot_folder,
+    select_snapshot,
+    snapshot_dirs,
+)
+
+if TYPE_CHECKING:
+    # pyarrow is imported by the functions that read Parquet, not at start-up: status,
+    # snapshots and the checksums need none of it
+    import pyarrow as pa
 
 
-def newest(root: Path) -> Path:
-    """The newest complete snapshot folder; SnapshotError when there is none."""
-    dirs = snapshot_dirs(root)
-    if not dirs:
-        raise SnapshotError(f"{root}: no snapshot here (expected folders named snap-NNNNNNNN)")
-    return dirs[-1]
+# ------------------------------------------------------------------ records and their rendering
+
+
+@dataclass(frozen=True)
+class Column:
+    """One text column: the record key it shows, its header, how a value prints, its alignment."""
+
+    key: str
+    header: str
+    fmt: Callable[[object], str] = str
+    right: bool = False
+
+
+def _score_text(value: object) -> str:
+    return "unknown node" if value is None else f"{value:.6e}"
+
+
+TOP_COLUMNS = [Column("rank", "rank", str, right=True), Column("node", "node"), Column("score", "score", _score_text)]
+SCORE_COLUMNS = [Column("node", "node"), Column("score", "score", _score_text)]
+
+
+def render_table(records: list[dict], columns: list[Column]) -> list[str]:
+    """Records as aligned text lines under a header (the last column is not padded)."""
+    cells = [[c.header for c in columns]] + [[c.fmt(r.get(c.key)) for c in columns] for r in records]
+    widths = [max(len(row[i]) for row in cells) for i in range(len(columns))]
+    lines = []
+    for row in cells:
+        parts = [
+            (cell.rjust(w) if col.right else cell.ljust(w)) if i < len(columns) - 1 else cell
+            for i, (cell, w, col) in enumerate(zip(row, widths, columns))
+        ]
+        lines.append("  ".join(parts).rstrip())
+    return lines
+
+
+def _json_safe(value):
+    """NaN and infinities are not JSON: they print as null."""
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    if isinstance(value, dict):
+        return {k: _json_safe(v) for k, v in value.items()}
+    if isinstance(value, list):
+        return [_json_safe(v) for v in value]
+    return value
+
+
+def emit_json(obj: dict) -> None:
+    """Print one object in the reading commands' ``--json`` style."""
+    print(json.dumps(_json_safe(obj), indent=2, allow_nan=False))
+
+
+def envelope(chosen: Selected, **fields) -> dict:
+    """The keys every ``--json`` object of a served snapshot starts with."""
+    skipped = [{"snapshot": name, "reason": reason} for name, reason in chosen.skipped]
+    return {"snapshot": chosen.path.name, "skipped": skipped, **fields}
+
+
+# ------------------------------------------------------------------ choosing the snapshot
+
+
+def choose(root: Path, name: str | None, command: str) -> Selected:
+    """The snapshot ``command`` serves; each skipped one is named on standard error.
+
+    Raises
+    ------
+    SnapshotError
+        No valid snapshot, or the one named is missing or invalid.
+    """
+
+    def say(skipped: str, reason: str) -> None:
+        print(f"ranktide {command}: skipping {skipped}: {reason}", file=sys.stderr)
+
+    return select_snapshot(root, name, on_skip=say)
+
+
+def _fail(command: str, exc: Exception) -> int:
+    print(f"ranktide {command}: error: {exc}", file=sys.stderr)
+    return 2
+
+
+# ------------------------------------------------------------------ status
 
 
 def _age(created: str) -> str:
@@ -82,67 +186,152 @@ def describe(manifest: dict, path: Path) -> list[str]:
     return lines
 
 
-def describe_newest(root: Path, as_json: bool = False) -> int:
+def describe_newest(root: Path, as_json: bool = False, name: str | None = None, command: str = "status") -> int:
+    """``ranktide status``: the served snapshot's manifest in words (or as JSON)."""
     try:
-        path = newest(root)
-        manifest = read_manifest(path)
+        chosen = choose(root, name, command)
+        text = None if as_json else "\n".join(describe(chosen.manifest, chosen.path))
     except SnapshotError as exc:
-        print(f"ranktide status: error: {exc}", file=sys.stderr)
-        return 2
-    from ranktide.stream.recompute_job import describe_status
+        return _fail(command, exc)
+    except (KeyError, TypeError, ValueError) as exc:  # a manifest that passed the checks but lies
+        return _fail(command, SnapshotError(f"{root}: manifest.json: unexpected content ({exc})"))
+    if as_json:
+        emit_json(envelope(chosen, manifest=chosen.manifest))
+    else:
+        from ranktide.stream.recompute_job import describe_status
 
-    print(json.dumps(manifest, indent=2) if as_json else "\n".join(describe(manifest, path) + describe_status(root)))
+        print("\n".join([text, *describe_status(chosen.path.parent)]))
     return 0
 
 
-def _profile_scores(root: Path, profile: str):
-    import pyarrow.compute as pc  # here, not at start-up: status reads no Parquet
+# ------------------------------------------------------------------ snapshots
+
+
+def snapshot_record(path: Path) -> dict:
+    """One row of ``ranktide snapshots``: what the manifest says, and whether the snapshot is valid."""
+    manifest, reason = inspect_snapshot(path)
+    m = manifest or {}
+    return {
+        "snapshot": path.name,
+        "sequence": m.get("sequence"),
+        "created_at": m.get("created_at"),
+        "events_applied": m.get("events_applied"),
+        "events_rejected": m.get("events_rejected"),
+        "certified_bound": m.get("certified_bound"),
+        "valid": reason is None,
+        "reason": reason,
+    }
+
+
+def _bounds_text(bounds: object) -> str:
+    if not isinstance(bounds, dict):
+        return "?"
+    # null: the L1 error is not certified (an rtol-only contract may leave it so)
+    return " ".join(f"{name}={b:.2g}" if isinstance(b, (int, float)) else f"{name}=n/a" for name, b in bounds.items())
+
+
+def _count_text(value: object) -> str:
+    return f"{value:,}" if isinstance(value, int) else "?"
+
+
+SNAPSHOT_COLUMNS = [
+    Column("snapshot", "snapshot"),
+    Column("sequence", "sequence", lambda v: "?" if v is None else str(v), right=True),
+    Column("created_at", "written", lambda v: v or "?"),
+    Column("events_applied", "applied", _count_text, right=True),
+    Column("events_rejected", "rejected", _count_text, right=True),
+    Column("certified_bound", "bounds", _bounds_text),
+    Column("validity", "validity"),
+]
+
+
+def list_snapshots(root: Path, as_json: bool = False) -> int:
+    """``ranktide snapshots``: every snapshot under ``root``, oldest first, with its validity."""
+    root = Path(root)
+    try:
+        dirs = [root] if is_snapshot_folder(root) else snapshot_dirs(root)
+    except OSError as exc:
+        return _fail("snapshots", SnapshotError(f"{root}: cannot list snapshots: {exc.strerror or exc}"))
+    if not dirs:
+        what = "no such folder" if not root.is_dir() else "no snapshot here (expected folders named snap-NNNNNNNN)"
+        return _fail("snapshots", SnapshotError(f"{root}: {what}"))
+    records = [snapshot_record(d) for d in dirs]
+    if as_json:
+        emit_json({"root": str(root), "snapshots": records})
+        return 0
+    for r in records:
+        r["validity"] = "valid" if r["valid"] else f"INVALID: {r['reason']}"
+    print("\n".join(render_table(records, SNAPSHOT_COLUMNS)))
+    return 0
+
+
+# ------------------------------------------------------------------ top and score
+
+
+def _profile_scores(chosen: Selected, profile: str) -> pa.Table:
+    """The rows of one profile in the served snapshot's scores.parquet."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
     import pyarrow.parquet as pq
 
-    path = newest(root)
-    table = pq.read_table(path / "scores.parquet")
+    try:
+        table = pq.read_table(chosen.path / "scores.parquet")
+    except (OSError, pa.ArrowException) as exc:
+        raise SnapshotError(f"{chosen.path}: unreadable scores.parquet: {exc}") from exc
     part = table.filter(pc.equal(table["profile"], profile))
     if part.num_rows == 0:
         known = sorted(set(table["profile"].to_pylist()))
-        raise SnapshotError(f"{path}: no profile {profile!r} (profiles: {', '.join(known)})")
-    return path, part
+        raise SnapshotError(f"{chosen.path}: no profile {profile!r} (profiles: {', '.join(known)})")
+    return part
 
 
-def print_top(root: Path, k: int, profile: str, as_json: bool = False) -> int:
-    try:
-        path, part = _profile_scores(root, profile)
-    except SnapshotError as exc:
-        print(f"ranktide top: error: {exc}", file=sys.stderr)
-        return 2
+def top_records(part: pa.Table, k: int) -> list[dict]:
+    """The ``k`` best-scored nodes of one profile: rank, node, score (ties by node name)."""
     import pyarrow.compute as pc
 
     order = pc.sort_indices(part, sort_keys=[("score", "descending"), ("node", "ascending")])
-    best = part.take(order[: max(k, 0)])
-    rows = list(zip(best["node"].to_pylist(), best["score"].to_pylist()))
-    if as_json:
-        print(json.dumps({"snapshot": path.name, "profile": profile, "top": [{"node": n, "score": s} for n, s in rows]}))
-    else:
-        width = max([len(n) for n, _ in rows] + [4])
-        print(f"{'rank':>4}  {'node':<{width}}  score")
-        for i, (n, s) in enumerate(rows, 1):
-            print(f"{i:>4}  {n:<{width}}  {s:.6e}")
-    return 0
+    best = part.take(order[:k])
+    return [{"rank": i, "node": n, "score": s}
+            for i, (n, s) in enumerate(zip(best["node"].to_pylist(), best["score"].to_pylist()), 1)]
 
 
-def print_scores(root: Path, nodes: list[str], profile: str, as_json: bool = False) -> int:
-    try:
-        path, part = _profile_scores(root, profile)
-    except SnapshotError as exc:
-        print(f"ranktide score: error: {exc}", file=sys.stderr)
-        return 2
+def score_records(part: pa.Table, nodes: list[str]) -> list[dict]:
+    """Node and score of each named node, in the order given (score None: unknown node)."""
     import pyarrow as pa
     import pyarrow.compute as pc
 
     found = part.filter(pc.is_in(part["node"], value_set=pa.array(nodes, pa.string())))
     by_node = dict(zip(found["node"].to_pylist(), found["score"].to_pylist()))
+    return [{"node": n, "score": by_node.get(n)} for n in nodes]
+
+
+def _bound(chosen: Selected, profile: str) -> float | None:
+    return chosen.manifest["certified_bound"].get(profile)
+
+
+def print_top(root: Path, k: int, profile: str, as_json: bool = False, name: str | None = None) -> int:
+    """``ranktide top``; returns the exit code (2: no valid snapshot or no such profile)."""
+    try:
+        chosen = choose(root, name, "top")
+        records = top_records(_profile_scores(chosen, profile), k)
+    except SnapshotError as exc:
+        return _fail("top", exc)
     if as_json:
-        print(json.dumps({"snapshot": path.name, "profile": profile, "scores": {n: by_node.get(n) for n in nodes}}))
+        emit_json(envelope(chosen, profile=profile, certified_bound=_bound(chosen, profile), nodes=records))
     else:
-        for n in nodes:
-            print(f"{n}\t{by_node[n]:.6e}" if n in by_node else f"{n}\tunknown node")
-    return 0 if all(n in by_node for n in nodes) else 1
+        print("\n".join(render_table(records, TOP_COLUMNS)))
+    return 0
+
+
+def print_scores(root: Path, nodes: list[str], profile: str, as_json: bool = False, name: str | None = None) -> int:
+    """``ranktide score``; exit 1 when a node is unknown, 2 when no valid snapshot serves."""
+    try:
+        chosen = choose(root, name, "score")
+        records = score_records(_profile_scores(chosen, profile), nodes)
+    except SnapshotError as exc:
+        return _fail("score", exc)
+    if as_json:
+        emit_json(envelope(chosen, profile=profile, certified_bound=_bound(chosen, profile), nodes=records))
+    else:
+        print("\n".join(render_table(records, SCORE_COLUMNS)))
+    return 0 if all(r["score"] is not None for r in records) else 1

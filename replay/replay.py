@@ -5,7 +5,7 @@ from __future__ import annotations
 import json
 import sys
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 import numpy as np
@@ -13,7 +13,9 @@ import numpy as np
 from ranktide.solver import EventBatch, Ranker
 from ranktide.stream.events import Limits
 from ranktide.stream.logs import LogChunk, read_log, row_count_hint, seed_personalizations
-from ranktide.stream.snapshots import Counters, OutputError, load_snapshot, write_snapshot
+from ranktide.stream.rootlock import RootLock
+from ranktide.stream.snapshots import (Counters, OutputError, SnapshotError, load_snapshot, select_snapshot,
+                                       snapshot_dirs, write_snapshot)
 
 
 @dataclass
@@ -40,9 +42,10 @@ class ReplayOptions:
     progress : bool
         Show a progress bar on standard error.
     from_snapshot : Path, optional
-        Start from this snapshot folder instead of an empty graph; the log is
-        read from the snapshot's position in it (or, for a recording of a
-        topic, without the messages the snapshot's offsets cover).
+        Start from this snapshot folder (or the newest valid snapshot of this
+        root) instead of an empty graph; the log is read from the snapshot's
+        position in it (or, for a recording of a topic, without the messages
+        the snapshot's offsets cover).
     until : int or int, optional
         Stop after this line (JSON Lines) or row number when an ``int``; a
         time is given as ``Until.time_ms`` (events with a later ts stop it).
@@ -355,26 +358,59 @@ class _Replay:
                 self.skip[key] = max(self.skip.get(key, 0), top)
 
 
+def check_root(out: Path, start: Path | None) -> None:
+    """Refuse to add snapshots of one graph to a root that holds another's.
+
+    A replay writes into ``out`` when it holds no snapshot yet, or when the
+    replay continues one of them (``start``, the ``--from`` snapshot, lies
+    in ``out``); otherwise sequence numbers of two graphs would interleave
+    and a restarted service would resume the wrong one.
+
+    Raises
+    ------
+    SnapshotError
+        ``out`` holds snapshots and the replay does not start from one of them.
+    """
+    existing = snapshot_dirs(out)
+    if not existing:
+        return
+    if start is not None and Path(start).resolve().parent == Path(out).resolve():
+        return
+    held = existing[0].name if len(existing) == 1 else f"{existing[0].name} to {existing[-1].name}"
+    raise SnapshotError(f"{out} already holds snapshots of another graph ({held}): replay into an empty "
+                        f"folder, or continue this root with --from {out}")
+
+
 def replay_log(log: Path, out: Path, options: ReplayOptions = ReplayOptions()) -> ReplaySummary:
     """Replay ``log`` (from an empty graph or ``options.from_snapshot``) into snapshots under ``out``.
+
+    Holds the writer lock of ``out`` (:mod:`~ranktide.stream.rootlock`) throughout.
 
     Raises
     ------
     LogError
         When the log (or a seeds file) cannot be read at all.
     SnapshotError
-        When the starting snapshot cannot be read, or a snapshot not written.
+        When the starting snapshot cannot be read, a snapshot not written,
+        ``out`` is locked by another writer or holds another graph's snapshots.
     """
     started = time.perf_counter()
-    state = _Replay(log, out, options)
-    bar = _progress(Path(log), options.progress)
+    lock = RootLock.acquire(out, "ranktide replay", log=str(log))
     try:
-        state.run(bar)
+        if options.from_snapshot is not None:
+            options = replace(options, from_snapshot=select_snapshot(options.from_snapshot).path)
+        check_root(out, options.from_snapshot)
+        state = _Replay(log, out, options)
+        bar = _progress(Path(log), options.progress)
+        try:
+            state.run(bar)
+        finally:
+            state.rejects.close()
+            if bar is not None:
+                bar.close()
+        path = state.snapshot()
     finally:
-        state.rejects.close()
-        if bar is not None:
-            bar.close()
-    path = state.snapshot()
+        lock.release()
     ranker = state.ranker
     return ReplaySummary(
         snapshot=path,

@@ -183,13 +183,18 @@ def _cmd_replay(args: argparse.Namespace) -> int:
     targets = _targets(args)
     if targets is None:
         return 2
+    try:
+        start = None if args.from_snapshot is None else _resolve_from(args.from_snapshot)
+    except SnapshotError as exc:
+        print(f"ranktide replay: error: {exc}", file=sys.stderr)
+        return 2
     options = ReplayOptions(
         damping=0.85 if args.damping is None else args.damping,
         **targets,
         personalizations=dict(args.personalization or []),
         micro_batch=args.micro_batch,
         progress=not args.quiet and sys.stderr.isatty(),
-        from_snapshot=args.from_snapshot,
+        from_snapshot=start,
         until=args.until,
         pace=args.pace,
         snapshot_every=args.snapshot_every,
@@ -210,6 +215,16 @@ def _cmd_replay(args: argparse.Namespace) -> int:
     return 0
 
 
+def _resolve_from(path: Path) -> Path:
+    """``replay --from``: a snapshot folder, or the newest valid snapshot of a root (skips named on stderr)."""
+    from ranktide.stream.snapshots import select_snapshot
+
+    def say(name: str, reason: str) -> None:
+        print(f"ranktide replay: skipping {name}: {reason}", file=sys.stderr)
+
+    return select_snapshot(path, on_skip=say).path
+
+
 class _JsonFormatter(logging.Formatter):
     def format(self, record: logging.LogRecord) -> str:
         entry = {"time": self.formatTime(record), "level": record.levelname, "logger": record.name,
@@ -227,8 +242,8 @@ def _cmd_run(args: argparse.Namespace) -> int:
     from ranktide.stream.snapshots import OutputError, SnapshotError
 
     overrides = {
-        "source": args.source, "out": args.out, "group": args.group, "tolerance": args.tolerance,
-        "rtol": args.rtol, "certified_top": args.certified_top,
+        "source": args.source, "out": args.out, "group": args.group, "owner_topic": args.owner_topic,
+        "tolerance": args.tolerance, "rtol": args.rtol, "certified_top": args.certified_top,
         "damping": args.damping, "snapshot_interval": args.snapshot_interval,
         "keep_snapshots": args.keep_snapshots, "micro_batch": args.micro_batch,
         "rejects": f"kafka:{args.rejects_topic}" if args.rejects_topic else _rejects_target(args.rejects),
@@ -265,7 +280,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
     if code == 0 and not args.quiet:
         from ranktide.replay.reading import describe_newest
 
-        describe_newest(Path(cfg.out))
+        describe_newest(Path(cfg.out), command="run")
     return code
 
 
@@ -291,19 +306,81 @@ def _embedded_default(args: argparse.Namespace) -> dict:
 def _cmd_status(args: argparse.Namespace) -> int:
     from ranktide.replay.reading import describe_newest
 
-    return describe_newest(args.root, as_json=args.json)
+    return describe_newest(args.root, as_json=args.json, name=args.snapshot)
+
+
+def _cmd_snapshots(args: argparse.Namespace) -> int:
+    from ranktide.replay.reading import list_snapshots
+
+    return list_snapshots(args.root, as_json=args.json)
 
 
 def _cmd_top(args: argparse.Namespace) -> int:
     from ranktide.replay.reading import print_top
 
-    return print_top(args.root, args.k, args.profile, as_json=args.json)
+    return print_top(args.root, args.k, args.profile, as_json=args.json, name=args.snapshot)
 
 
 def _cmd_score(args: argparse.Namespace) -> int:
     from ranktide.replay.reading import print_scores
 
-    return print_scores(args.root, args.nodes, args.profile, as_json=args.json)
+    return print_scores(args.root, args.nodes, args.profile, as_json=args.json, name=args.snapshot)
+
+
+def _at_least_one(text: str) -> int:
+    """A count of at least 1 (argparse type)."""
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number >= 1, got {text!r}") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"must be at least 1, got {text}")
+    return value
+
+
+_ROOT_HELP = "snapshot root folder, or one snapshot folder itself"
+_SNAPSHOT_HELP = "read this snapshot of ROOT (e.g. snap-00000003) instead of the newest valid one"
+_JSON_HELP = "print one JSON object (see README, 'Reading commands and --json')"
+
+
+def _add_reading_parsers(sub) -> None:
+    """status, snapshots, top and score: the commands that read a snapshot root."""
+    epilog = ("Only a snapshot whose files pass their sha256 checksums is read: by default the newest "
+              "valid one, naming on stderr each newer one skipped and why. Exit 2 when none is valid.")
+    p = sub.add_parser("status", help="describe the newest valid snapshot in words", epilog=epilog,
+                       description="Describe a snapshot: sequence, time, graph size, events, certified bounds "
+                                   "and source positions.")
+    p.add_argument("root", type=Path, metavar="ROOT", help=_ROOT_HELP)
+    p.add_argument("--snapshot", metavar="NAME", help=_SNAPSHOT_HELP)
+    p.add_argument("--json", action="store_true", help=_JSON_HELP + "; the manifest is under 'manifest'")
+    p.set_defaults(func=_cmd_status)
+
+    p = sub.add_parser("snapshots", help="list every snapshot with its sequence, time, events, bounds and validity",
+                       description="List every snapshot under ROOT, oldest first, checking each file against "
+                                   "its sha256. Exit 0 when the list is printed (invalid snapshots included), "
+                                   "2 when ROOT holds no snapshot.")
+    p.add_argument("root", type=Path, metavar="ROOT", help=_ROOT_HELP)
+    p.add_argument("--json", action="store_true", help=_JSON_HELP + "; rows under 'snapshots'")
+    p.set_defaults(func=_cmd_snapshots)
+
+    p = sub.add_parser("top", help="the best-scored nodes of the newest valid snapshot", epilog=epilog,
+                       description="Print the k best-scored nodes of a profile: rank, node, score "
+                                   "(ties in name order).")
+    p.add_argument("root", type=Path, metavar="ROOT", help=_ROOT_HELP)
+    p.add_argument("-k", type=_at_least_one, default=20, help="how many nodes, at least 1 (default 20)")
+    p.add_argument("--profile", default="global", help="profile name (default global)")
+    p.add_argument("--snapshot", metavar="NAME", help=_SNAPSHOT_HELP)
+    p.add_argument("--json", action="store_true", help=_JSON_HELP + "; rows under 'nodes'")
+    p.set_defaults(func=_cmd_top)
+
+    p = sub.add_parser("score", help="scores of named nodes in the newest valid snapshot", epilog=epilog,
+                       description="Print the score of each named node; exit 1 when one is unknown.")
+    p.add_argument("root", type=Path, metavar="ROOT", help=_ROOT_HELP)
+    p.add_argument("nodes", nargs="+", metavar="NODE", help="node ids to look up")
+    p.add_argument("--profile", default="global", help="profile name (default global)")
+    p.add_argument("--snapshot", metavar="NAME", help=_SNAPSHOT_HELP)
+    p.add_argument("--json", action="store_true", help=_JSON_HELP + "; rows under 'nodes', unknown score null")
+    p.set_defaults(func=_cmd_score)
 
 
 def _cmd_record(args: argparse.Namespace) -> int:
@@ -382,8 +459,9 @@ def build_parser() -> argparse.ArgumentParser:
                    help="settle after every N events, as the service does (default: settle only before "
                         "each snapshot, which is faster and gives the same snapshots within the tolerance)")
     p.add_argument("--from", dest="from_snapshot", type=Path, metavar="SNAPSHOT",
-                   help="start from this snapshot folder instead of an empty graph; the log is read from the "
-                        "snapshot's position in it (a recording skips the messages the snapshot covers)")
+                   help="start from this snapshot folder (or the newest valid snapshot of a root) instead of an "
+                        "empty graph; the log is read from the snapshot's position in it (a recording skips the "
+                        "messages the snapshot covers). ROOT must be empty of snapshots or hold this one")
     p.add_argument("--until", type=_until, metavar="POSITION|TIME",
                    help="stop after this line (row, for Parquet and CSV) or before the first event later than "
                         "this ISO-8601 time")
@@ -411,6 +489,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--source", metavar="SOURCE", help="kafka://HOST:PORT/TOPIC or file:PATH")
     p.add_argument("--out", metavar="ROOT", help="snapshot root folder (default ranktide-out)")
     p.add_argument("--group", help="Kafka consumer group (default ranktide)")
+    p.add_argument("--owner-topic", metavar="TOPIC",
+                   help="one-partition Kafka topic whose holder owns the graph among the group's processes "
+                        "(default GROUP.owner; created when missing)")
     add_engine_options(p)
     p.add_argument("--snapshot-interval", type=_positive_float, metavar="SECONDS",
                    help="seconds between snapshots (default 60)")
@@ -455,24 +536,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--quiet", action="store_true", help="do not describe the final snapshot")
     p.set_defaults(func=_cmd_run)
 
-    p = sub.add_parser("status", help="describe the newest snapshot in words")
-    p.add_argument("root", type=Path, help="snapshot root folder")
-    p.add_argument("--json", action="store_true", help="print the manifest as JSON")
-    p.set_defaults(func=_cmd_status)
-
-    p = sub.add_parser("top", help="the best-scored nodes of the newest snapshot")
-    p.add_argument("root", type=Path)
-    p.add_argument("-k", type=int, default=20, help="how many nodes (default 20)")
-    p.add_argument("--profile", default="global", help="profile name (default global)")
-    p.add_argument("--json", action="store_true")
-    p.set_defaults(func=_cmd_top)
-
-    p = sub.add_parser("score", help="scores of named nodes in the newest snapshot")
-    p.add_argument("root", type=Path)
-    p.add_argument("nodes", nargs="+", metavar="NODE")
-    p.add_argument("--profile", default="global")
-    p.add_argument("--json", action="store_true")
-    p.set_defaults(func=_cmd_score)
+    _add_reading_parsers(sub)
 
     p = sub.add_parser("record", help="copy a Kafka topic into a Parquet event log",
                        description="Copy every partition of a topic, from its start, into a Parquet log with "
@@ -493,8 +557,10 @@ def build_parser() -> argparse.ArgumentParser:
                                    "bound and whether it holds, top-k overlap, Kendall tau on the top k, the largest "
                                    "relative errors and the residual drift. Exits 1 when a measured error exceeds "
                                    "the certified bound or a file fails its checksum.")
-    p.add_argument("root", type=Path, help="snapshot root folder")
-    p.add_argument("--snapshot", metavar="NAME", help="audit this snapshot (default: the newest)")
+    p.add_argument("root", type=Path, metavar="ROOT", help=_ROOT_HELP)
+    p.add_argument("--snapshot", metavar="NAME",
+                   help="audit this snapshot (default: the newest valid one; newer ones failing their "
+                        "checksums are named and fail the audit)")
     p.add_argument("--all", action="store_true", help="audit every snapshot in the root")
     p.add_argument("-k", type=_positive_int, default=100, help="size of the top set for overlap and Kendall tau (default 100)")
     p.add_argument("--json", action="store_true", help="print the results as JSON")

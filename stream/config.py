@@ -50,7 +50,9 @@ class ServiceConfig:
         Kafka consumer group.
     owner_topic : str
         One-partition topic whose holder owns the graph among the group's
-        processes (default ``GROUP.owner``, created when missing).
+        processes (default ``GROUP.owner``, created when missing; option
+        ``--owner-topic``, variable ``RANKTIDE_OWNER_TOPIC``). Its consumer
+        group is always ``GROUP.owner``.
     rtol : float
         The per-node contract: every published score within relative ``rtol``
         of the exact one (default 1e-3; 0 turns it off, then ``tolerance`` must be set).

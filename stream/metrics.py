@@ -25,7 +25,8 @@ class Metrics:
     feed_sent: int = 0
     snapshots: int = 0
     snapshot_seconds: float = 0.0
-    last_snapshot: float = 0.0
+    last_snapshot: float = 0.0  # Unix time of the newest snapshot (written or restored); 0: none
+    records_since_snapshot: int = 0  # records read that no snapshot covers yet
     bounds: dict[str, float] = field(default_factory=dict)
     rtol_reached: dict[str, float] = field(default_factory=dict)
     lag: dict[str, int] = field(default_factory=dict)
@@ -48,10 +49,13 @@ class Metrics:
         self._rate_window.append((now, self.events_applied, self.events_rejected))
         self._rate_window = [w for w in self._rate_window if now - w[0] <= 60.0]
 
-    def record_snapshot(self, seconds: float) -> None:
-        self.snapshots += 1
+    def record_snapshot(self, seconds: float, created: float) -> None:
+        """A snapshot written in ``seconds``, stamped ``created`` (Unix time), covering every record read."""
+        # the count first: a scrape between the two never pairs the new time with old records
+        self.records_since_snapshot = 0
+        self.last_snapshot = created
         self.snapshot_seconds = seconds
-        self.last_snapshot = time.time()
+        self.snapshots += 1
 
     def record_request(self, cpu_seconds: float) -> None:
         """One read API request answered, with the CPU time its thread spent on it."""
@@ -110,10 +114,17 @@ class Metrics:
         ]
         lines += [f'ranktide_consumer_lag{{partition="{k}"}} {v}' for k, v in sorted(self.lag.items())]
         age = time.time() - self.last_snapshot if self.last_snapshot else float("nan")
+        stamp = self.last_snapshot if self.last_snapshot else float("nan")
         lines += [
-            "# HELP ranktide_snapshot_age_seconds Seconds since the last snapshot was written.",
+            "# HELP ranktide_snapshot_age_seconds Seconds since the newest snapshot was written (restored ones count).",
             "# TYPE ranktide_snapshot_age_seconds gauge",
             f"ranktide_snapshot_age_seconds {age:.3f}",
+            "# HELP ranktide_snapshot_timestamp_seconds Unix time of the newest snapshot (its manifest's created_at).",
+            "# TYPE ranktide_snapshot_timestamp_seconds gauge",
+            f"ranktide_snapshot_timestamp_seconds {stamp:.3f}",
+            "# HELP ranktide_records_since_snapshot Records read that no snapshot covers yet (0 when idle and saved).",
+            "# TYPE ranktide_records_since_snapshot gauge",
+            f"ranktide_records_since_snapshot {self.records_since_snapshot}",
             "# HELP ranktide_snapshot_duration_seconds Time the last snapshot took.",
             "# TYPE ranktide_snapshot_duration_seconds gauge",
             f"ranktide_snapshot_duration_seconds {self.snapshot_seconds:.3f}",

@@ -39,6 +39,7 @@ from ranktide.stream.events import Limits
 from ranktide.stream.logs import seed_personalizations
 from ranktide.stream.metrics import Metrics, start_metrics_server
 from ranktide.stream.recompute_job import RecomputeJob
+from ranktide.stream.rootlock import RootLock, RootLocked
 from ranktide.stream.snapshots import (Counters, SnapshotError, check_writable, load_latest, prune,
                                        write_snapshot)
 from ranktide.stream.sources import Source, SourceChunk, kafka_config, open_source
@@ -51,6 +52,22 @@ VIEW_COST_FACTOR = 50
 #: Allocations between young-generation collections while the service runs
 #: (Python's default is 700).
 GC_YOUNG_THRESHOLD = 100_000
+#: Seconds a Kafka process that became the owner waits for the previous owner
+#: (on this host) to let go of the snapshot root's writer lock.
+ROOT_LOCK_WAIT = 60.0
+
+
+def _stamp(when: datetime) -> str:
+    """The manifest's ``created_at`` text of a time (millisecond precision)."""
+    return when.isoformat(timespec="milliseconds")
+
+
+def _created(manifest: dict) -> float:
+    """Unix time of a manifest's ``created_at`` (0.0 when it cannot be read)."""
+    try:
+        return datetime.fromisoformat(manifest["created_at"]).timestamp()
+    except (KeyError, TypeError, ValueError):
+        return 0.0
 
 
 class RejectsSink:
@@ -159,9 +176,12 @@ class ScoreFeed:
 class Service:
     """``ranktide run``: see the module docstring."""
 
-    def __init__(self, config: ServiceConfig) -> None:
+    def __init__(self, config: ServiceConfig, root_lock: RootLock | None = None) -> None:
+        """``root_lock``: the root's writer lock when the caller took it already (``demo``)."""
         self.cfg = config
         self.out = Path(config.out)
+        self._root_lock = root_lock
+        self.source_is_kafka = False
         self.limits = Limits(config.max_id_length, config.max_message_bytes)
         self.metrics = Metrics()
         self._stop = threading.Event()
@@ -201,17 +221,40 @@ class Service:
             return {}
         self.ranker = snap.ranker
         self.counters = snap.counters
+        self.metrics.last_snapshot = _created(snap.manifest)
         rejects.truncate(int(snap.manifest.get("positions", {}).get("rejects_bytes", 0)))
         log.info("resumed from %s: %d events applied, %d rejected", snap.path.name,
                  self.counters.events_applied, self.counters.events_rejected)
         return snap.manifest.get("positions", {})
 
+    def _lock_root(self, wait: float = 0.0) -> None:
+        """Hold the snapshot root's writer lock (a no-op when held already)."""
+        if self._root_lock is None:
+            self._root_lock = RootLock.wait(self.out, "ranktide run", wait, self._stop,
+                                            source=self.cfg.source, group=self.cfg.group)
+
+    def _unlock_root(self) -> None:
+        if self._root_lock is not None:
+            self._root_lock.release()
+            self._root_lock = None
+
+    def _check_kafka_root(self) -> None:
+        """A Kafka process waits as a standby only beside writers of its own group."""
+        holder = RootLock.holder(self.out)
+        if holder is not None and not (holder.get("group") == self.cfg.group
+                                       and str(holder.get("source", "")).startswith("kafka://")):
+            raise RootLocked(self.out, holder)
+
     def _take_over(self, rejects: RejectsSink) -> None:
         """Become the owner: state from the newest snapshot, source at its positions."""
+        if self.source_is_kafka:
+            # the previous owner gives the lock back when it hands over; wait for it
+            self._lock_root(wait=ROOT_LOCK_WAIT)
         self.live.phase = "restoring"
         self.source.seek(self._restore(rejects))
         self._owner = True
-        self._events_at_snapshot = self.counters.events_applied + self.counters.events_rejected
+        self._events_at_snapshot = self._seen()
+        self.metrics.records_since_snapshot = 0
         self._last_snapshot = time.monotonic()
         self._unsettled = self.ranker.engine.n_nodes > 0  # an empty engine has nothing to settle
         self._view_due = True
@@ -229,19 +272,25 @@ class Service:
         self.source.release()
         self._owner = False
         self.ranker = None
+        self._unlock_root()
         self.live.view = None
         self.live.phase = "waiting for ownership"
 
     def run(self) -> int:
         """Run until stopped; return the process exit code."""
         cfg = self.cfg
-        log.info("starting with %s", json.dumps(cfg.redacted(), default=str))
         bootstrap = cfg.source[len("kafka://"):].split("/")[0] if cfg.source.startswith("kafka://") else None
+        self.source_is_kafka = bootstrap is not None
         check_writable(self.out, "snapshot root")  # before any long wait or work
+        # before anything else touches the root; a Kafka process locks it once it owns the graph
         if bootstrap:
+            self._check_kafka_root()
             from ranktide.stream.sources import wait_for_brokers
 
             wait_for_brokers(bootstrap, cfg.kafka, cfg.connect_timeout)
+        else:
+            self._lock_root()
+        log.info("starting with %s", json.dumps(cfg.redacted(), default=str))
         rejects = RejectsSink(cfg.rejects, self.out, cfg.kafka, bootstrap)
         self.source = open_source(cfg.source, cfg.group, cfg.kafka, self.limits, cfg.poll_records,
                                   cfg.file_chunk_bytes, finite=cfg.stop_at_end)
@@ -308,6 +357,8 @@ class Service:
                 self._snapshot(rejects, reason="final")  # settles first
                 if feed is not None:
                     feed.publish(self.ranker, self.source.positions())
+        except RootLocked:
+            raise
         except SnapshotError as exc:
             log.error("%s", exc)
             return 3
@@ -322,6 +373,7 @@ class Service:
             if lock is not None:
                 lock.close()
             self.source.close()
+            self._unlock_root()
         return 0
 
     def _follow_lock(self, lock, rejects: RejectsSink) -> bool:
@@ -332,12 +384,11 @@ class Service:
         return held and self._owner
 
     def _snapshot_if_due(self, rejects: RejectsSink) -> None:
-        seen = self.counters.events_applied + self.counters.events_rejected
         every = self.cfg.snapshot_events
-        by_count = every > 0 and seen - self._events_at_snapshot >= every
+        by_count = every > 0 and self._seen() - self._events_at_snapshot >= every
         if self._dirty and (by_count or time.monotonic() - self._last_snapshot >= self.cfg.snapshot_interval):
             self._snapshot(rejects)
-            self._last_snapshot, self._events_at_snapshot = time.monotonic(), seen
+            self._last_snapshot = time.monotonic()
 
     # -------------------------------------------------------------- work
     def _apply(self, chunk: SourceChunk) -> None:
@@ -353,9 +404,15 @@ class Service:
                 self._settle(publish=False)  # the chunk is not all applied: its positions would lie
         self.counters.events_rejected += len(chunk.parsed.reasons)
         self.metrics.record_batch(len(batch), len(chunk.parsed.reasons))
+        self.metrics.records_since_snapshot = self._seen() - self._events_at_snapshot
+
         self._view_due = True
         if not self._unsettled and time.monotonic() >= self._next_view:
             self._publish()  # the chunk ended with a settle: a consistent state to show
+
+    def _seen(self) -> int:
+        """Records read so far (applied or rejected), over the whole history of the root."""
+        return self.counters.events_applied + self.counters.events_rejected
 
     def _settle(self, publish: bool = True) -> None:
         """Bring every profile within the tolerance (scores are fresh again).
@@ -406,7 +463,9 @@ class Service:
         started = time.perf_counter()
         rejects.flush()
         positions = {**self.source.positions(), "rejects_bytes": rejects.size()}
-        path = write_snapshot(self.out, self.ranker, self.counters, positions)  # settles first
+        created = datetime.now(timezone.utc)
+        path = write_snapshot(self.out, self.ranker, self.counters, positions, created_at=created)  # settles first
+        self._events_at_snapshot = self._seen()
         self._unsettled = False
         self._settled_at = time.monotonic()
         certificates = self.ranker.engine.last_certificates
@@ -418,7 +477,8 @@ class Service:
         self.source.commit(positions)
         removed = prune(self.out, self.cfg.keep_snapshots)
         self._dirty = False
-        self.metrics.record_snapshot(time.perf_counter() - started)
+        # the manifest's time, to the millisecond, so the metric and the manifest agree
+        self.metrics.record_snapshot(time.perf_counter() - started, datetime.fromisoformat(_stamp(created)).timestamp())
         log.info("snapshot %s (%s): %d applied, %d rejected, pruned %d", path.name, reason,
                  self.counters.events_applied, self.counters.events_rejected, len(removed))
         return path

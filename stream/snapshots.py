@@ -60,6 +60,10 @@ class SnapshotError(RuntimeError):
     """A snapshot could not be written or read; the message says where and why."""
 
 
+class NoValidSnapshot(SnapshotError):
+    """Snapshots exist under a root, but every one fails its checks."""
+
+
 class OutputError(SnapshotError):
     """An output (a snapshot, the rejects file, a picture) cannot be written: exit code 3."""
 
@@ -385,14 +389,134 @@ def read_manifest(path: Path) -> dict:
         raise SnapshotError(f"{path}: unreadable manifest.json: {exc}") from exc
 
 
-def verify(path: Path, manifest: dict) -> None:
-    """Check every file against the manifest's sha256; raise SnapshotError on a mismatch."""
-    for fname, digest in manifest.get("files", {}).items():
+#: Manifest keys every reader relies on.
+REQUIRED_KEYS = ("sequence", "created_at", "damping", "tolerance", "certified_bound", "events_applied",
+                 "events_noop", "events_rejected", "profiles", "files")
+#: Files every snapshot must hold, each with its checksum in the manifest.
+REQUIRED_FILES = ("scores.parquet", "edges.parquet", "seeds.parquet")
+
+
+def problem(path: Path, manifest: dict) -> str | None:
+    """Why snapshot folder ``path`` must not be read (a missing key, file or checksum), or None.
+
+    Every file the manifest lists is hashed again and compared with its
+    sha256, so a truncated or bit-flipped file is caught before any reader
+    parses it.
+    """
+    if manifest.get("format") not in READABLE_FORMATS:
+        return (f"snapshot format {manifest.get('format')!r}, "
+                f"this version reads {', '.join(map(str, READABLE_FORMATS))}")
+    missing = [key for key in REQUIRED_KEYS if key not in manifest]
+    if missing:
+        return f"manifest.json lacks {', '.join(missing)}"
+    files = manifest["files"]
+    if not isinstance(files, dict) or not isinstance(manifest["certified_bound"], dict):
+        return "manifest.json is malformed (files and certified_bound must be objects)"
+    unlisted = [name for name in REQUIRED_FILES if name not in files]
+    if unlisted:
+        return f"manifest.json has no checksum for {', '.join(unlisted)}"
+    for fname, digest in files.items():
         f = Path(path) / fname
         if not f.is_file():
-            raise SnapshotError(f"{path}: {fname} is missing")
-        if _sha256(f) != digest:
-            raise SnapshotError(f"{path}: {fname} fails its sha256 checksum")
+            return f"{fname} is missing"
+        try:
+            if _sha256(f) != digest:
+                return f"{fname} fails its sha256 checksum"
+        except OSError as exc:
+            return f"cannot read {fname}: {exc.strerror or exc}"
+    return None
+
+
+def verify(path: Path, manifest: dict) -> None:
+    """Check the manifest and every file against its sha256; raise SnapshotError on a problem."""
+    reason = problem(path, manifest)
+    if reason is not None:
+        raise SnapshotError(f"{path}: {reason}")
+
+
+def inspect_snapshot(path: Path) -> tuple[dict | None, str | None]:
+    """The manifest of snapshot folder ``path`` and why it must not be read (None when valid)."""
+    try:
+        manifest = read_manifest(path)
+    except SnapshotError as exc:
+        return None, str(exc).removeprefix(f"{path}: ")
+    if not isinstance(manifest, dict):
+        return None, "manifest.json is not a JSON object"
+    return manifest, problem(path, manifest)
+
+
+def is_snapshot_folder(path: Path) -> bool:
+    """Whether ``path`` is one snapshot's folder (it holds a manifest) rather than a root."""
+    return (Path(path) / "manifest.json").is_file()
+
+
+@dataclass
+class Selected:
+    """The snapshot a reading command serves, and the newer ones it passed over.
+
+    Attributes
+    ----------
+    path : Path
+        The snapshot folder.
+    manifest : dict
+        Its manifest (checked).
+    skipped : list of (str, str)
+        Name and reason of every newer snapshot that failed its checks.
+    """
+
+    path: Path
+    manifest: dict
+    skipped: list[tuple[str, str]] = field(default_factory=list)
+
+
+def select_snapshot(root: Path, name: str | None = None, on_skip=None) -> Selected:
+    """The newest valid snapshot under ``root``, or the one asked for.
+
+    Parameters
+    ----------
+    root : Path
+        A snapshot root, or one snapshot folder itself.
+    name : str, optional
+        A snapshot folder name under ``root`` (``--snapshot NAME``): that
+        one or an error, never another.
+    on_skip : callable, optional
+        Called with ``(name, reason)`` for each newer snapshot passed over.
+
+    Raises
+    ------
+    SnapshotError
+        When the asked-for snapshot is missing or invalid, or no snapshot
+        under ``root`` is valid; the message names the place and the reason.
+    """
+    root = Path(root)
+    if is_snapshot_folder(root):
+        if name is not None and name != root.name:
+            raise SnapshotError(f"{root} is itself a snapshot folder; --snapshot {name} names another")
+        candidates, explicit = [root], True
+    elif name is not None:
+        if not (root / name).is_dir():
+            raise SnapshotError(f"{root}: no snapshot named {name}")
+        candidates, explicit = [root / name], True
+    else:
+        if not root.is_dir():
+            raise SnapshotError(f"{root}: {'not a folder' if root.exists() else 'no such folder'}")
+        try:
+            candidates, explicit = list(reversed(snapshot_dirs(root))), False
+        except OSError as exc:
+            raise SnapshotError(f"{root}: cannot list snapshots: {exc.strerror or exc}") from exc
+        if not candidates:
+            raise SnapshotError(f"{root}: no snapshot here (expected folders named snap-NNNNNNNN)")
+    skipped = []
+    for path in candidates:
+        manifest, reason = inspect_snapshot(path)
+        if reason is None:
+            return Selected(path, manifest, skipped)
+        if explicit:
+            raise SnapshotError(f"{path}: {reason}")
+        skipped.append((path.name, reason))
+        if on_skip is not None:
+            on_skip(path.name, reason)
+    raise NoValidSnapshot(f"{root}: no valid snapshot ({len(skipped)} skipped, each failing its checks)")
 
 
 def _intern_column(ids: NodeIds, column: pa.ChunkedArray) -> np.ndarray:

@@ -609,7 +609,12 @@ class OwnerLock:
             futures[self.topic].result(timeout=30)
             log.info("created owner topic %s", self.topic)
         except KafkaException as exc:
-            if exc.args[0].code() != KafkaError.TOPIC_ALREADY_EXISTS:
+            code = exc.args[0].code()
+            if code == KafkaError.TOPIC_ALREADY_EXISTS:
+                return
+            # without the Create ACL, a topic an operator created beforehand is enough
+            denied = code in (KafkaError.TOPIC_AUTHORIZATION_FAILED, KafkaError.CLUSTER_AUTHORIZATION_FAILED)
+            if not (denied and self.topic in admin.list_topics(timeout=30).topics):
                 raise SourceError(f"cannot create owner topic {self.topic}: {exc.args[0].str()}") from exc
 
     def _assign(self, consumer, partitions) -> None:

@@ -193,11 +193,11 @@ def test_top_and_score_read_the_newest_snapshot(random_log, tmp_path: Path) -> N
     scores = _scores(summary.snapshot)
     best = sorted(scores.items(), key=lambda kv: (-kv[1], kv[0]))[:5]
     top = json.loads(_cli("top", str(tmp_path / "snaps"), "-k", "5", "--json").stdout)
-    assert [(r["node"], r["score"]) for r in top["top"]] == best
+    assert [(r["node"], r["score"]) for r in top["nodes"]] == best
     proc = _cli("score", str(tmp_path / "snaps"), best[0][0], "no-such-node", "--json")
     assert proc.returncode == 1  # one node is unknown
-    got = json.loads(proc.stdout)["scores"]
-    assert got == {best[0][0]: best[0][1], "no-such-node": None}
+    got = json.loads(proc.stdout)["nodes"]
+    assert got == [{"node": best[0][0], "score": best[0][1]}, {"node": "no-such-node", "score": None}]
     status = _cli("status", str(tmp_path / "snaps"))
     assert status.returncode == 0 and "(within rtol)" in status.stdout
     assert f"source: file {Path(log).resolve()}" in status.stdout

@@ -176,7 +176,9 @@ def test_metrics_endpoint_and_json_logs(tmp_path: Path) -> None:
 
     body, metrics = scrape()
     deadline = time.monotonic() + 30
-    while counted(metrics) < len(stream.records) and time.monotonic() < deadline:
+    # the gauges of a snapshot are set just after its folder appears: wait for the counter that follows them
+    while (counted(metrics) < len(stream.records) or metrics.get("ranktide_snapshots_total", 0) < 1) \
+            and time.monotonic() < deadline:
         time.sleep(0.1)
         body, metrics = scrape()
     proc.send_signal(signal.SIGTERM)
