@@ -56,8 +56,21 @@ def _score_text(value: object) -> str:
     return "unknown node" if value is None else f"{value:.6e}"
 
 
-TOP_COLUMNS = [Column("rank", "rank", str, right=True), Column("node", "node"), Column("score", "score", _score_text)]
-SCORE_COLUMNS = [Column("node", "node"), Column("score", "score", _score_text)]
+def _bound_text(value: object) -> str:
+    return "-" if value is None else f"±{value:.2e}"
+
+
+def _ranks_text(value: object) -> str:
+    if value is None:
+        return "-"
+    best, worst = value
+    return str(best) if best == worst else f"{best}-{worst}"
+
+
+TOP_COLUMNS = [Column("rank", "rank", str, right=True), Column("node", "node"), Column("score", "score", _score_text),
+               Column("error_bound", "bound", _bound_text), Column("rank_range", "possible ranks", _ranks_text)]
+SCORE_COLUMNS = [Column("node", "node"), Column("score", "score", _score_text),
+                 Column("error_bound", "bound", _bound_text)]
 
 
 def render_table(records: list[dict], columns: list[Column]) -> list[str]:
@@ -285,24 +298,66 @@ def _profile_scores(chosen: Selected, profile: str) -> pa.Table:
     return part
 
 
-def top_records(part: pa.Table, k: int) -> list[dict]:
-    """The ``k`` best-scored nodes of one profile: rank, node, score (ties by node name)."""
+def _unlisted(chosen: Selected, part: pa.Table, profile: str) -> tuple[int, float]:
+    """How many nodes a personalization leaves out (score 0), and the bound that covers them."""
+    facts = chosen.manifest.get("profiles", {}).get(profile, {})
+    unlisted = max(int(chosen.manifest.get("nodes", part.num_rows)) - part.num_rows, 0)
+    bound = facts.get("unlisted_bound")
+    return unlisted, (float("inf") if bound is None else float(bound)) if unlisted else 0.0
+
+
+def top_records(part: pa.Table, k: int, unlisted: tuple[int, float] = (0, 0.0)) -> tuple[list[dict], bool | None]:
+    """The ``k`` best-scored nodes of one profile, and whether that set is certainly the top k.
+
+    Each record: rank, node, score, its certified ``error_bound`` and the
+    ``rank_range`` it may hold given every node's interval ``score +- bound``
+    (design notes 4b; ``solver.bounds.ranks_between``). Snapshots without
+    bounds (format 1) give ``None`` for both.
+    """
+    import numpy as np
     import pyarrow.compute as pc
+
+    from ranktide.solver.bounds import ranks_between, sorted_ends
 
     order = pc.sort_indices(part, sort_keys=[("score", "descending"), ("node", "ascending")])
     best = part.take(order[:k])
-    return [{"rank": i, "node": n, "score": s}
-            for i, (n, s) in enumerate(zip(best["node"].to_pylist(), best["score"].to_pylist()), 1)]
+    records = [{"rank": i, "node": n, "score": s, "error_bound": None, "rank_range": None}
+               for i, (n, s) in enumerate(zip(best["node"].to_pylist(), best["score"].to_pylist()), 1)]
+    if "error_bound" not in part.column_names or not records:
+        return records, None
+    scores = part["score"].to_numpy()
+    bounds = part["error_bound"].to_numpy()
+    lo_sorted, hi_sorted = sorted_ends(scores, bounds)
+    s, b = best["score"].to_numpy(), best["error_bound"].to_numpy()
+    first, last = ranks_between(lo_sorted, hi_sorted, s - b, s + b, *unlisted)
+    for rec, bound, lo_rank, hi_rank in zip(records, b.tolist(), first.tolist(), last.tolist()):
+        rec["error_bound"], rec["rank_range"] = bound, [lo_rank, hi_rank]
+    # certain when the smallest lower end inside beats every upper end outside (the unlisted too)
+    taken = np.zeros(scores.size, dtype=bool)
+    taken[order[:k].to_numpy()] = True
+    outside = float((scores[~taken] + bounds[~taken]).max(initial=unlisted[1] if unlisted[0] else -np.inf))
+    return records, bool(float((s - b).min()) > outside)
 
 
-def score_records(part: pa.Table, nodes: list[str]) -> list[dict]:
-    """Node and score of each named node, in the order given (score None: unknown node)."""
+def score_records(part: pa.Table, nodes: list[str], unlisted: tuple[int, float] = (0, 0.0),
+                  known: set[str] | None = None) -> list[dict]:
+    """Node, score and ``error_bound`` of each named node, in the order given (score None: unknown node).
+
+    A node of the graph that a personalization leaves out (``known``) scores
+    0 within the profile's unlisted bound.
+    """
     import pyarrow as pa
     import pyarrow.compute as pc
 
     found = part.filter(pc.is_in(part["node"], value_set=pa.array(nodes, pa.string())))
-    by_node = dict(zip(found["node"].to_pylist(), found["score"].to_pylist()))
-    return [{"node": n, "score": by_node.get(n)} for n in nodes]
+    has_bounds = "error_bound" in found.column_names
+    bounds = found["error_bound"].to_pylist() if has_bounds else [None] * found.num_rows
+    by_node = {n: (s, b) for n, s, b in zip(found["node"].to_pylist(), found["score"].to_pylist(), bounds)}
+    for n in nodes:
+        if n not in by_node and known is not None and n in known:
+            by_node[n] = (0.0, unlisted[1] if has_bounds else None)
+    return [{"node": n, "score": by_node.get(n, (None, None))[0], "error_bound": by_node.get(n, (None, None))[1]}
+            for n in nodes]
 
 
 def _bound(chosen: Selected, profile: str) -> float | None:
@@ -313,21 +368,36 @@ def print_top(root: Path, k: int, profile: str, as_json: bool = False, name: str
     """``ranktide top``; returns the exit code (2: no valid snapshot or no such profile)."""
     try:
         chosen = choose(root, name, "top")
-        records = top_records(_profile_scores(chosen, profile), k)
+        part = _profile_scores(chosen, profile)
+        records, certain = top_records(part, k, _unlisted(chosen, part, profile))
     except SnapshotError as exc:
         return _fail("top", exc)
     if as_json:
-        emit_json(envelope(chosen, profile=profile, certified_bound=_bound(chosen, profile), nodes=records))
+        emit_json(envelope(chosen, profile=profile, certified_bound=_bound(chosen, profile),
+                           top_set_certified=certain, nodes=records))
     else:
         print("\n".join(render_table(records, TOP_COLUMNS)))
+        if certain is not None:
+            verdict = "certified: no other node can be in it" if certain else \
+                "not certified: intervals overlap at its edge"
+            print(f"top-{len(records)} set {verdict}")
     return 0
+
+
+def _known_nodes(chosen: Selected, profile: str, nodes: list[str]) -> set[str] | None:
+    """Which of ``nodes`` the graph has (from the global rows), for a personalization's left-out nodes."""
+    if profile == "global":
+        return None
+    found = _profile_scores(chosen, "global")
+    return set(found["node"].to_pylist()) & set(nodes)
 
 
 def print_scores(root: Path, nodes: list[str], profile: str, as_json: bool = False, name: str | None = None) -> int:
     """``ranktide score``; exit 1 when a node is unknown, 2 when no valid snapshot serves."""
     try:
         chosen = choose(root, name, "score")
-        records = score_records(_profile_scores(chosen, profile), nodes)
+        part = _profile_scores(chosen, profile)
+        records = score_records(part, nodes, _unlisted(chosen, part, profile), _known_nodes(chosen, profile, nodes))
     except SnapshotError as exc:
         return _fail("score", exc)
     if as_json:

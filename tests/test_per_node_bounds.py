@@ -166,3 +166,36 @@ def test_bounds_hold_after_random_event_sequences(batches, rtol: float) -> None:
             assert not ranker.engine.certificate(profile).bounds.any()
             continue
         _check_profile(ranker, model, profile, rtol)
+
+
+def test_top_and_score_show_bounds_and_rank_ranges_that_hold(tmp_path) -> None:
+    """``ranktide top --json``: each node's bound holds against NetworkX and its true rank lies in its range."""
+    import json
+    import subprocess
+    import sys
+
+    from ranktide.replay.replay import replay_log
+
+    rng = np.random.default_rng(41)
+    model = random_model(rng, n=300, m=1_800, n_dangling=20, n_isolated=3, n_selfloops=5)
+    log = tmp_path / "events.jsonl"
+    log.write_text("".join(json.dumps({"op": "insert", "src": u, "dst": v, "weight": w}) + "\n"
+                           for (u, v), w in model.edges.items()))
+    model.nodes = {n: None for n in model.nodes if any(n in e for e in model.edges)}
+    replay_log(log, tmp_path / "snaps")
+    cli = [sys.executable, "-m", "ranktide.stream.cli", "--log-level", "WARNING"]
+    top = json.loads(subprocess.run([*cli, "top", str(tmp_path / "snaps"), "-k", "25", "--json"],
+                                    capture_output=True, text=True, check=True).stdout)
+    reference = nx_pagerank(model)
+    order = sorted(reference, key=lambda n: -reference[n])
+    assert isinstance(top["top_set_certified"], bool)
+    for row in top["nodes"]:
+        assert abs(row["score"] - reference[row["node"]]) <= row["error_bound"] + 1e-15
+        true_rank = order.index(row["node"]) + 1
+        assert row["rank_range"][0] <= true_rank <= row["rank_range"][1], row
+    if top["top_set_certified"]:
+        assert {r["node"] for r in top["nodes"]} == set(order[:25])
+    node = top["nodes"][0]["node"]
+    score = json.loads(subprocess.run([*cli, "score", str(tmp_path / "snaps"), node, "--json"],
+                                      capture_output=True, text=True, check=True).stdout)
+    assert score["nodes"][0]["error_bound"] == top["nodes"][0]["error_bound"]
