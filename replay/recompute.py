@@ -37,7 +37,8 @@ from ranktide.solver.ids import NodeIds
 from ranktide.replay.recompute_common import (RecomputeError, RecomputeInput, Settings, number_text, print_progress,
                                               recompute_manifest, write)
 from ranktide.solver.recompute import Targets, recompute
-from ranktide.stream.snapshots import (Counters, SnapshotError, contract_facts, read_manifest, snapshot_dirs,
+from ranktide.stream.rootlock import RootLock
+from ranktide.stream.snapshots import (Counters, OutputError, SnapshotError, contract_facts, read_manifest, snapshot_dirs,
                                        snapshot_tables, verify)
 
 
@@ -273,11 +274,19 @@ def run_recompute(args) -> int:
         add_seeds(inp, args.personalization)
         settings = settings_for(inp, args.rtol, args.tolerance, args.certified_top, args.damping,
                                 parse_positions(args.positions))
-        path = run_engine(inp, Path(args.out), settings, args.engine, args.master,
-                          parse_spark_conf(args.spark_conf), args.staging, progress=not args.quiet)
+        # one writer per root, like run and replay; taken once the input is known to be good
+        lock = RootLock.acquire(Path(args.out), "ranktide recompute", input=str(args.input))
+        try:
+            path = run_engine(inp, Path(args.out), settings, args.engine, args.master,
+                              parse_spark_conf(args.spark_conf), args.staging, progress=not args.quiet)
+        finally:
+            lock.release()
     except RecomputeError as exc:
         print(f"ranktide recompute: error: {exc}", file=sys.stderr)
         return exc.code
+    except SnapshotError as exc:  # the root is another writer's, or cannot be locked
+        print(f"ranktide recompute: error: {exc}", file=sys.stderr)
+        return 3 if isinstance(exc, OutputError) else 2
     manifest = read_manifest(path)
     if not args.quiet:
         print(f"recomputed {manifest['nodes']:,} nodes, {manifest['edges']:,} edges on {manifest['engine']} in "

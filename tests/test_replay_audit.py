@@ -197,7 +197,8 @@ def test_top_and_score_read_the_newest_snapshot(random_log, tmp_path: Path) -> N
     proc = _cli("score", str(tmp_path / "snaps"), best[0][0], "no-such-node", "--json")
     assert proc.returncode == 1  # one node is unknown
     got = json.loads(proc.stdout)["nodes"]
-    assert got == [{"node": best[0][0], "score": best[0][1]}, {"node": "no-such-node", "score": None}]
+    assert [(r["node"], r["score"]) for r in got] == [best[0], ("no-such-node", None)]
+    assert 0 < got[0]["error_bound"] <= 1e-3 * best[0][1] and got[1]["error_bound"] is None
     status = _cli("status", str(tmp_path / "snaps"))
     assert status.returncode == 0 and "(within rtol)" in status.stdout
     assert f"source: file {Path(log).resolve()}" in status.stdout

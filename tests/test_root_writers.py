@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import json
 import math
+import os
 import signal
 import socket
 import subprocess
@@ -188,3 +189,28 @@ def test_metrics_tell_an_idle_healthy_service_from_a_stale_one(tmp_path: Path) -
     assert _scrape(port)["ranktide_records_since_snapshot"] == 0
     restarted.send_signal(signal.SIGTERM)
     assert restarted.wait(30) == 0
+
+
+def test_recompute_into_a_root_another_writer_holds_exits_2(tmp_path: Path) -> None:
+    """``ranktide recompute --out ROOT`` takes the root's writer lock like run and replay."""
+    import subprocess
+    import sys
+
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    from ranktide.stream.rootlock import RootLock
+
+    table = tmp_path / "edges.parquet"
+    pq.write_table(pa.table({"src": ["a", "b"], "dst": ["b", "a"], "weight": [1.0, 2.0]}), table)
+    lock = RootLock.acquire(tmp_path / "root", "a test holding the root")
+    try:
+        done = subprocess.run([sys.executable, "-m", "ranktide.stream.cli", "recompute", str(table), "--out",
+                               str(tmp_path / "root")], capture_output=True, text=True, timeout=300)
+    finally:
+        lock.release()
+    assert done.returncode == 2, done.stderr
+    assert str(os.getpid()) in done.stderr and len(done.stderr.strip().splitlines()) == 1
+    done = subprocess.run([sys.executable, "-m", "ranktide.stream.cli", "recompute", str(table), "--out",
+                           str(tmp_path / "root"), "--quiet"], capture_output=True, text=True, timeout=300)
+    assert done.returncode == 0, done.stderr
