@@ -82,6 +82,24 @@ def _rehash(table, shift, hashes, n):
         table[cell] = idx
 
 
+def _lookup(name: str, off: np.ndarray, data: np.ndarray, hashes: np.ndarray, table: np.ndarray, shift: int,
+            n: int) -> int | None:
+    """Id below ``n`` of ``name`` in the hash table, or None (ids at or above ``n`` are stepped over)."""
+    raw = np.frombuffer(name.encode("utf-8"), dtype=np.uint8)
+    h = _fnv1a(raw, 0, raw.shape[0])
+    mask = table.shape[0] - 1
+    cell = ((int(h) * int(_GOLDEN)) & 0xFFFFFFFFFFFFFFFF) >> shift
+    while True:
+        idx = int(table[cell])
+        if idx == -1:
+            return None
+        if idx < n:
+            a, b = off[idx], off[idx + 1]
+            if hashes[idx] == h and bytes(data[a:b]) == raw.tobytes():
+                return idx
+        cell = (cell + 1) & mask
+
+
 def _string_buffers(names: pa.Array) -> tuple[np.ndarray, np.ndarray]:
     """(offsets int64, data uint8) of a string array, whatever its offset and offset width."""
     if isinstance(names, pa.ChunkedArray):
@@ -144,18 +162,7 @@ class NodeIds:
 
     def lookup(self, name: str) -> int | None:
         """Id of ``name``, or None when it is unknown (adds nothing)."""
-        raw = np.frombuffer(name.encode("utf-8"), dtype=np.uint8)
-        h = _fnv1a(raw, 0, raw.shape[0])
-        mask = self._table.shape[0] - 1
-        cell = ((int(h) * int(_GOLDEN)) & 0xFFFFFFFFFFFFFFFF) >> self._shift
-        while True:
-            idx = int(self._table[cell])
-            if idx == -1:
-                return None
-            a, b = self._off[idx], self._off[idx + 1]
-            if self._hashes[idx] == h and bytes(self._data[a:b]) == raw.tobytes():
-                return idx
-            cell = (cell + 1) & mask
+        return _lookup(name, self._off, self._data, self._hashes, self._table, self._shift, len(self))
 
     def name(self, idx: int) -> str:
         a, b = self._off[idx], self._off[idx + 1]
@@ -214,19 +221,7 @@ class FrozenIds:
 
     def lookup(self, name: str) -> int | None:
         """Id of ``name``, or None when it was not held."""
-        raw = np.frombuffer(name.encode("utf-8"), dtype=np.uint8)
-        h = _fnv1a(raw, 0, raw.shape[0])
-        mask = self._table.shape[0] - 1
-        cell = ((int(h) * int(_GOLDEN)) & 0xFFFFFFFFFFFFFFFF) >> self._shift
-        while True:
-            idx = int(self._table[cell])
-            if idx == -1:
-                return None
-            if idx < self.n:
-                a, b = self._off[idx], self._off[idx + 1]
-                if self._hashes[idx] == h and bytes(self._data[a:b]) == raw.tobytes():
-                    return idx
-            cell = (cell + 1) & mask
+        return _lookup(name, self._off, self._data, self._hashes, self._table, self._shift, self.n)
 
     def name(self, idx: int) -> str:
         """Name of id ``idx`` (below ``n``)."""
