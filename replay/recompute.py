@@ -37,7 +37,7 @@ from ranktide.solver.ids import NodeIds
 from ranktide.replay.recompute_common import (RecomputeError, RecomputeInput, Settings, number_text, print_progress,
                                               recompute_manifest, write)
 from ranktide.solver.recompute import Targets, recompute
-from ranktide.stream.rootlock import RootLock
+from ranktide.stream.rootlock import LOCK_NAME, RootLock
 from ranktide.stream.snapshots import (Counters, OutputError, SnapshotError, contract_facts, read_manifest, snapshot_dirs,
                                        snapshot_tables, verify)
 
@@ -275,10 +275,18 @@ def run_recompute(args) -> int:
         settings = settings_for(inp, args.rtol, args.tolerance, args.certified_top, args.damping,
                                 parse_positions(args.positions))
         # one writer per root, like run and replay; taken once the input is known to be good
-        lock = RootLock.acquire(Path(args.out), "ranktide recompute", input=str(args.input))
+        out = Path(args.out)
+        fresh_root = not out.exists()
+        lock = RootLock.acquire(out, "ranktide recompute", input=str(args.input))
         try:
-            path = run_engine(inp, Path(args.out), settings, args.engine, args.master,
+            path = run_engine(inp, out, settings, args.engine, args.master,
                               parse_spark_conf(args.spark_conf), args.staging, progress=not args.quiet)
+        except BaseException:
+            if fresh_root:  # a failed first write leaves no root behind, not even the lock file
+                (out / LOCK_NAME).unlink(missing_ok=True)
+                if not any(out.iterdir()):
+                    out.rmdir()
+            raise
         finally:
             lock.release()
     except RecomputeError as exc:
