@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import os
+import subprocess
+from pathlib import Path
 from typing import Iterator
 
 import pytest
@@ -49,3 +51,18 @@ def kafka_broker() -> Iterator[LocalKafka]:
         yield broker
     finally:
         broker.stop()
+
+
+@pytest.fixture
+def tiny_disk(tmp_path: Path) -> Iterator[Path]:
+    """A 512 KiB tmpfs: a real full disk (needs root and mount rights, as on this project's machines)."""
+    mount_point = tmp_path / "disk"
+    mount_point.mkdir()
+    done = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=512k", "tmpfs", str(mount_point)],
+                          capture_output=True, text=True)
+    if done.returncode != 0:
+        pytest.skip(f"cannot mount a small tmpfs here: {done.stderr.strip()}")
+    try:
+        yield mount_point
+    finally:
+        subprocess.run(["umount", "-l", str(mount_point)], check=False)

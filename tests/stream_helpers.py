@@ -136,6 +136,18 @@ def scrape(port: int) -> dict[str, float]:
     return {ln.split()[0]: float(ln.split()[1]) for ln in text.splitlines() if ln and ln[0] != "#"}
 
 
+def wait_for(predicate, timeout: float = 90.0, what: str = "condition") -> None:
+    """Poll ``predicate`` until it holds; AssertionError naming ``what`` after ``timeout`` seconds."""
+    import time
+
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        if predicate():
+            return
+        time.sleep(0.05)
+    raise AssertionError(f"timed out after {timeout} s waiting for {what}")
+
+
 def wait_until_counted(proc: subprocess.Popen, port: int, records: int, timeout: float = 180.0) -> None:
     """Until the child on metrics ``port`` has applied or rejected ``records`` records (a generous deadline)."""
     import time

@@ -22,7 +22,7 @@ import numpy as np
 import pyarrow.parquet as pq
 import pytest
 
-from stream_helpers import newest_snapshot, ranktide
+from stream_helpers import newest_snapshot, ranktide, wait_for
 
 REPO = Path(__file__).resolve().parents[1]
 EVENTS = [
@@ -77,15 +77,6 @@ def _manifest(snap: Path) -> dict:
     return json.loads((snap / "manifest.json").read_text())
 
 
-def _wait_for(predicate, timeout: float = 90.0, what: str = "condition") -> None:
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        if predicate():
-            return
-        time.sleep(0.05)
-    raise AssertionError(f"timed out after {timeout} s waiting for {what}")
-
-
 # ---------------------------------------------------------------- item 3: a last line without newline
 
 
@@ -118,14 +109,14 @@ def test_a_followed_file_keeps_a_partial_line_until_it_is_complete(tmp_path: Pat
         m = _manifest(newest_snapshot(root))
         return m["events_applied"] + m["events_rejected"]
 
-    _wait_for(lambda: covered() == 3, what="a snapshot of the three complete lines")
+    wait_for(lambda: covered() == 3, what="a snapshot of the three complete lines")
     assert _manifest(newest_snapshot(root))["events_rejected"] == 0  # the half line was not taken
     with open(log, "ab") as fh:
         fh.write(last[10:])  # complete the record, still without a newline: the file may grow on
     # a followed file never ends: the record waits for its newline
     with open(log, "ab") as fh:
         fh.write(b"\n")
-    _wait_for(lambda: covered() == 4, what="a snapshot that includes the completed line")
+    wait_for(lambda: covered() == 4, what="a snapshot that includes the completed line")
     proc.terminate()
     assert proc.wait(60) == 0
     snap = newest_snapshot(root)
@@ -215,21 +206,6 @@ def test_bad_settings_from_the_environment_are_one_line_exit_2(small_log: Path, 
 
 def test_replay_into_an_impossible_folder_exits_3(small_log: Path) -> None:
     _one_line_error(_run("replay", str(small_log), "--out", "/proc/x/snaps", "--quiet"), 3, "/proc/x")
-
-
-@pytest.fixture
-def tiny_disk(tmp_path: Path):
-    """A 512 KiB tmpfs (needs root and mount rights, as on this project's machines)."""
-    mount_point = tmp_path / "disk"
-    mount_point.mkdir()
-    done = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=512k", "tmpfs", str(mount_point)],
-                          capture_output=True, text=True)
-    if done.returncode != 0:
-        pytest.skip(f"cannot mount a small tmpfs here: {done.stderr.strip()}")
-    try:
-        yield mount_point
-    finally:
-        subprocess.run(["umount", "-l", str(mount_point)], check=False)
 
 
 def test_replay_onto_a_full_disk_exits_3_and_leaves_no_half_snapshot(tiny_disk: Path, tmp_path: Path) -> None:

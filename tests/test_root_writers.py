@@ -15,13 +15,12 @@ import signal
 import socket
 import subprocess
 import sys
-import time
 import urllib.request
 from pathlib import Path
 
 import numpy as np
 
-from stream_helpers import Stream, check_snapshot_against, newest_snapshot, ranktide
+from stream_helpers import Stream, check_snapshot_against, newest_snapshot, ranktide, wait_for
 
 TOLERANCE = 1e-6
 
@@ -36,15 +35,6 @@ def _log(path: Path, seed: int, count: int = 2_000) -> Stream:
     stream.extend(np.random.default_rng(seed), count, n_nodes=400)
     path.write_bytes(b"".join(value + b"\n" for _, value in stream.records))
     return stream
-
-
-def _wait_for(predicate, timeout: float = 60.0, what: str = "condition") -> None:
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        if predicate():
-            return
-        time.sleep(0.05)
-    raise AssertionError(f"timed out waiting for {what}")
 
 
 def _snaps(root: Path) -> list[str]:
@@ -69,7 +59,7 @@ def test_a_second_writer_on_a_live_root_exits_2_naming_the_holder(tmp_path: Path
     stream = _log(log, 1)
     root = tmp_path / "snaps"
     live = _follow(log, root)
-    _wait_for(lambda: bool(_snaps(root)), what="the live writer's first snapshot")
+    wait_for(lambda: bool(_snaps(root)), what="the live writer's first snapshot")
 
     second_run = _cli("run", "--source", f"file:{log}", "--out", str(root), "--metrics", "", "--stop-at-end")
     replay = _cli("replay", str(log), "--out", str(root), "--from", str(root))
@@ -79,7 +69,7 @@ def test_a_second_writer_on_a_live_root_exits_2_naming_the_holder(tmp_path: Path
         assert f"pid {live.pid}" in line and str(root) in line
     demo_out = tmp_path / "demo"
     demo_live = _follow(log, demo_out / "snapshots")
-    _wait_for(lambda: bool(_snaps(demo_out / "snapshots")), what="a writer in the demo's root")
+    wait_for(lambda: bool(_snaps(demo_out / "snapshots")), what="a writer in the demo's root")
     demo = _cli("demo", "--out", str(demo_out))
     assert demo.returncode == 2 and f"pid {demo_live.pid}" in _one_line(demo.stderr)
     assert not (demo_out / "scenario").exists()  # refused before writing anything
@@ -98,7 +88,7 @@ def test_the_lock_dies_with_its_process(tmp_path: Path) -> None:
     stream = _log(log, 2)
     root = tmp_path / "snaps"
     live = _follow(log, root)
-    _wait_for(lambda: bool(_snaps(root)), what="a first snapshot")
+    wait_for(lambda: bool(_snaps(root)), what="a first snapshot")
     live.kill()  # SIGKILL: no cleanup runs, the kernel drops the lock
     live.wait(30)
     proc = _cli("run", "--source", f"file:{log}", "--out", str(root), "--metrics", "", "--stop-at-end",
@@ -159,7 +149,7 @@ def test_metrics_tell_an_idle_healthy_service_from_a_stale_one(tmp_path: Path) -
     port = _free_port()
     # a long interval: everything read stays uncovered until the final snapshot
     proc = _follow(log, root, "--snapshot-interval", "3600", "--metrics", f"127.0.0.1:{port}")
-    _wait_for(lambda: _scrape(port).get("ranktide_events_applied_total", 0)
+    wait_for(lambda: _scrape(port).get("ranktide_events_applied_total", 0)
               + _scrape(port).get("ranktide_events_rejected_total", 0) == len(stream.records),
               what="every record applied")
     values = _scrape(port)
@@ -170,7 +160,7 @@ def test_metrics_tell_an_idle_healthy_service_from_a_stale_one(tmp_path: Path) -
     written = json.loads((newest_snapshot(root) / "manifest.json").read_text())["created_at"]
     restarted = _follow(log, root, "--snapshot-interval", "0.2", "--metrics", f"127.0.0.1:{port}")
     # the endpoint answers while the service restores: wait until the restored snapshot counts
-    _wait_for(lambda: math.isfinite(_scrape(port).get("ranktide_snapshot_age_seconds", math.nan)),
+    wait_for(lambda: math.isfinite(_scrape(port).get("ranktide_snapshot_age_seconds", math.nan)),
               what="the age of the restored snapshot")
     first = _scrape(port)
     # idle and healthy: nothing uncovered, and the age is that of the restored snapshot (not NaN)
@@ -180,11 +170,11 @@ def test_metrics_tell_an_idle_healthy_service_from_a_stale_one(tmp_path: Path) -
     expected_age = (datetime.now(timezone.utc) - datetime.fromisoformat(written)).total_seconds()
     assert 0 <= first["ranktide_snapshot_age_seconds"] <= expected_age + 1
     assert first["ranktide_snapshot_timestamp_seconds"] == datetime.fromisoformat(written).timestamp()
-    _wait_for(lambda: _scrape(port)["ranktide_snapshot_age_seconds"] > 1.0, what="the idle age to grow")
+    wait_for(lambda: _scrape(port)["ranktide_snapshot_age_seconds"] > 1.0, what="the idle age to grow")
     assert _scrape(port)["ranktide_records_since_snapshot"] == 0  # growing age alone is no alarm
     with open(log, "ab") as fh:
         fh.write(b'{"op": "insert", "src": "new", "dst": "v1"}\n')
-    _wait_for(lambda: _scrape(port)["ranktide_snapshot_timestamp_seconds"]
+    wait_for(lambda: _scrape(port)["ranktide_snapshot_timestamp_seconds"]
               > datetime.fromisoformat(written).timestamp(), what="a snapshot covering the new record")
     assert _scrape(port)["ranktide_records_since_snapshot"] == 0
     restarted.send_signal(signal.SIGTERM)

@@ -16,7 +16,7 @@ import numpy as np
 import pytest
 
 from stream_helpers import (Stream, check_snapshot_against, free_port, newest_snapshot, ranktide, sigterm_and_check,
-                            wait_until_counted)
+                            wait_for, wait_until_counted)
 
 TOLERANCE = 1e-6
 SLOW = {"RANKTIDE_FILE_CHUNK_BYTES": "2048"}  # small polls, so a crash lands mid-stream
@@ -36,15 +36,6 @@ def _logged_stream(folder: Path, rng: np.random.Generator, count: int, **kwargs)
     return stream, log
 
 
-def _wait_for(predicate, timeout: float = 60.0, what: str = "condition") -> None:
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        if predicate():
-            return
-        time.sleep(0.05)
-    raise AssertionError(f"timed out waiting for {what}")
-
-
 def _has_snapshot(root: Path) -> bool:
     return root.is_dir() and any(p.name.startswith("snap-") for p in root.iterdir())
 
@@ -59,7 +50,7 @@ def test_follows_a_growing_file_and_resumes_after_kill9(tmp_path: Path) -> None:
     stream, log = _logged_stream(tmp_path, rng, 6000)
     root = tmp_path / "snaps"
     first = ranktide(*_run_args(log, root), env=SLOW)
-    _wait_for(lambda: _has_snapshot(root), what="a first snapshot")
+    wait_for(lambda: _has_snapshot(root), what="a first snapshot")
     # grow the file while the consumer runs, ending with half a line
     more = Stream(records=list(stream.records), edges=stream.edges, nodes=stream.nodes, malformed=stream.malformed)
     more.extend(rng, 6000)
@@ -164,7 +155,7 @@ def test_metrics_endpoint_and_json_logs(tmp_path: Path) -> None:
     port = free_port()
     args = [a for a in _run_args(log, root) if a not in ("--metrics", "")]
     proc = ranktide(*args, "--metrics", f"127.0.0.1:{port}", "--log-json")
-    _wait_for(lambda: _has_snapshot(root), what="a first snapshot")
+    wait_for(lambda: _has_snapshot(root), what="a first snapshot")
     def scrape() -> tuple[str, dict[str, float]]:
         with urllib.request.urlopen(f"http://127.0.0.1:{port}/metrics", timeout=5) as resp:
             assert resp.headers["Content-Type"].startswith("text/plain")
@@ -191,23 +182,6 @@ def test_metrics_endpoint_and_json_logs(tmp_path: Path) -> None:
     entries = [json.loads(line) for line in err.decode().splitlines() if line.startswith("{")]
     assert entries and all({"time", "level", "logger", "message"} <= set(e) for e in entries)
     assert any("snapshot" in e["message"] for e in entries)
-
-
-@pytest.fixture
-def tiny_disk(tmp_path: Path):
-    """A 512 KiB tmpfs (needs root and mount rights, as on this project's machines)."""
-    import subprocess
-
-    mount_point = tmp_path / "disk"
-    mount_point.mkdir()
-    done = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=512k", "tmpfs", str(mount_point)],
-                          capture_output=True, text=True)
-    if done.returncode != 0:
-        pytest.skip(f"cannot mount a small tmpfs here: {done.stderr.strip()}")
-    try:
-        yield mount_point
-    finally:
-        subprocess.run(["umount", "-l", str(mount_point)], check=False)
 
 
 def test_a_full_disk_is_a_clear_error_and_leaves_no_half_snapshot(tiny_disk: Path, tmp_path: Path) -> None:
