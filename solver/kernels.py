@@ -823,15 +823,3 @@ def active_l1(k, R, active, n_active, parked):
     for i in range(n_active[k]):
         total += abs(R[k, active[k, i]])
     return total
-
-
-@njit(cache=True, nogil=True)
-def largest_ratio(k, R, S, alpha, beta, active, n_active):
-    """``max |r(u)| / w(u)`` over the active list."""
-    worst = 0.0
-    for i in range(n_active[k]):
-        u = active[k, i]
-        ratio = abs(R[k, u]) / _threshold(S, k, u, alpha, beta)
-        if ratio > worst:
-            worst = ratio
-    return worst
