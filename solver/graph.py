@@ -3,26 +3,36 @@
 The graph is stored for two access patterns that the solver needs:
 
 * *point updates*: ``insert`` sets the weight of ``u -> v``, ``delete`` removes
-  it. An open-addressing hash table (linear probing, backward-shift deletion,
-  so no tombstones) maps the pair ``(u, v)`` to an *edge slot* in O(1)
-  expected time.
+  it. An open-addressing hash table (linear probing) maps the pair ``(u, v)``
+  to an *edge slot* in O(1) expected time. A cell holds only the slot number:
+  a cell holding slot ``e`` is the pair ``(u, v)`` when ``e`` lies in ``u``'s
+  block and ``dst[e] == v`` (blocks never overlap), so no source array is
+  stored and a probe past another node's cell costs no memory access outside
+  the table. A delete leaves a *tombstone* (the home cell of the other
+  entries cannot be recomputed without their source); the table is rebuilt
+  from the blocks when entries and tombstones pass :data:`MAX_LOAD`.
 * *out-neighbour scans*: the out-edges of node ``u`` sit side by side in a
   *block* of slots, ``start[u] .. start[u] + out_degree[u] - 1``, with
   ``cap[u]`` slots reserved. A push reads them in one sequential run (a
   linked list of slots, the first design, cost a cache miss per edge). A
   delete moves the block's last edge into the hole, so blocks stay packed; an
-  insert into a full block moves it to a block twice as large (amortised
-  O(1)); freed blocks wait in lists by size class and are reused; when slack
-  passes :data:`COMPACT_SLACK` of the stored edges the whole store is rewritten
-  in node order (:meth:`DynamicGraph.compact`).
+  insert into a full block moves it to a block of the next power of two
+  (amortised O(1)); a batch of many inserts first moves every block it would
+  overflow to one sized for its final degree plus a quarter
+  (:func:`solver.kernels.presize_blocks`), so a bulk insert packs like a bulk
+  load; freed blocks wait in lists by size class and are reused; when slack
+  passes :data:`COMPACT_SLACK` of the stored edges the whole store is
+  rewritten in node order (:meth:`DynamicGraph.compact`).
 
-Edge slots live in parallel arrays (``src``, ``dst``, ``weight``); every slot
-not holding an edge has ``src = -1``. A global sweep reads the slot arrays
-front to back, which needs no compressed-row copy of the graph.
+Edge slots live in two parallel arrays (``dst``, ``weight``); a slot outside
+every block's first ``out_degree`` slots holds nothing meaningful. A global
+sweep reads the blocks node by node.
 
-Memory per stored edge: 16 bytes of slot arrays times the blocks' fill (a
-bulk load leaves a quarter of slack) plus 4 bytes per hash cell (load factor
-kept between 0.35 and 0.7): about 26 to 36 bytes in all.
+Memory per stored edge: 12 bytes per slot (a bulk load or bulk insert leaves
+a quarter of slack, so about 15 bytes) plus 4 bytes per hash cell (at most
+:data:`MAX_LOAD` of the cells used, at least a quarter after a rebuild): about
+21 to 31 bytes in all. :meth:`DynamicGraph.memory_bytes` counts the arrays'
+capacity, not only the slots in use.
 
 All mutation happens inside the compiled kernels of :mod:`solver.kernels`;
 this module owns the arrays, their amortised growth and read-only views.
@@ -35,13 +45,19 @@ from dataclasses import dataclass, field
 import numpy as np
 from numba import njit
 
-#: Largest hash-table load before it doubles. Linear probing stays short below 0.7.
+#: Largest share of hash cells holding an entry or a tombstone; above it the table is
+#: rebuilt. Linear probing stays short below 0.7.
 MAX_LOAD = 0.7
+#: Largest load right after a rebuild: the table then takes at least ``MAX_LOAD - REHASH_LOAD``
+#: of its cells in new entries or tombstones before the next rebuild (amortised O(1)).
+REHASH_LOAD = 0.5
 #: Slack (slots handed out to blocks but holding no edge) that triggers a compaction,
 #: as a share of the stored edges; plus a floor so that small graphs never compact.
 COMPACT_SLACK = 0.6
 COMPACT_FLOOR = 1 << 16
 _EMPTY = np.int32(-1)
+#: A hash cell whose entry was deleted: probes go on past it, inserts may reuse it.
+TOMBSTONE = -2
 _GOLDEN = np.uint64(0x9E3779B97F4A7C15)
 
 
@@ -53,7 +69,7 @@ def hash_home(u: int, v: int, shift: int) -> int:
 
 
 @njit(cache=True, nogil=True)
-def compact_blocks(start, cap, out_degree, n, sizes, e_dst, e_w, new_src, new_dst, new_w, free_blocks, counters):
+def compact_blocks(start, cap, out_degree, n, sizes, e_dst, e_w, new_dst, new_w, free_blocks, counters):
     """Copy every node's out-edges into blocks of ``sizes[u]`` slots, in node order, in the ``new_`` arrays.
 
     Drops the slack that relocations and deletions leave; the caller swaps the
@@ -66,7 +82,6 @@ def compact_blocks(start, cap, out_degree, n, sizes, e_dst, e_w, new_src, new_ds
         start[u] = top
         cap[u] = sizes[u]
         for j in range(deg):
-            new_src[top + j] = u
             new_dst[top + j] = e_dst[old + j]
             new_w[top + j] = e_w[old + j]
         top += sizes[u]
@@ -75,16 +90,48 @@ def compact_blocks(start, cap, out_degree, n, sizes, e_dst, e_w, new_src, new_ds
 
 
 @njit(cache=True, nogil=True)
-def rebuild_hash(table: np.ndarray, shift: int, src: np.ndarray, dst: np.ndarray, top: int) -> None:
-    """Fill an empty ``table`` with every live slot below ``top``."""
+def rebuild_hash(table: np.ndarray, shift: int, start: np.ndarray, out_degree: np.ndarray, dst: np.ndarray,
+                 n: int) -> None:
+    """Fill an empty ``table`` with every live edge, walking the nodes' blocks."""
     mask = table.shape[0] - 1
-    for e in range(top):
-        if src[e] < 0:
-            continue
-        i = hash_home(src[e], dst[e], shift)
-        while table[i] != -1:
-            i = (i + 1) & mask
-        table[i] = e
+    for u in range(n):
+        first = start[u]
+        for e in range(first, first + out_degree[u]):
+            i = hash_home(u, dst[e], shift)
+            while table[i] != -1:
+                i = (i + 1) & mask
+            table[i] = e
+
+
+@njit(cache=True, nogil=True)
+def gather_edges(start: np.ndarray, out_degree: np.ndarray, dst: np.ndarray, weight: np.ndarray, n: int):
+    """Every live edge as ``(src, dst, weight)`` arrays, node by node in block order."""
+    m = 0
+    for u in range(n):
+        m += out_degree[u]
+    out_src = np.empty(m, np.int32)
+    out_dst = np.empty(m, np.int32)
+    out_w = np.empty(m, np.float64)
+    i = 0
+    for u in range(n):
+        first = start[u]
+        for e in range(first, first + out_degree[u]):
+            out_src[i] = u
+            out_dst[i] = dst[e]
+            out_w[i] = weight[e]
+            i += 1
+    return out_src, out_dst, out_w
+
+
+@njit(cache=True, nogil=True)
+def slot_owners(start: np.ndarray, out_degree: np.ndarray, slots: int) -> np.ndarray:
+    """Owner node of every slot holding an edge, -1 elsewhere (a check, not stored)."""
+    owner = np.full(slots, -1, np.int32)
+    for u in range(start.shape[0]):
+        first = start[u]
+        for e in range(first, first + out_degree[u]):
+            owner[e] = u
+    return owner
 
 
 @dataclass
@@ -99,30 +146,38 @@ class GraphArrays:
         Number of out-edges.
     start, cap : int32[node_capacity]
         First slot and size of each node's block (``cap`` 0: no block).
-    src, dst : int32[edge_capacity]
-        Slot arrays; ``src == -1`` in a slot holding no edge. The first slot of
-        a free block links the next free block of its size class in ``dst``.
+    dst : int32[edge_capacity]
+        Target of the edge in each slot. The first slot of a free block links
+        the next free block of its size class.
     weight : float64[edge_capacity]
         Weight of the edge in each slot.
     free_blocks : int32[32]
         First free block of each size class ``c`` (at least ``2**c`` slots), -1 if none.
     table : int32[2**bits]
-        Hash cells holding slot numbers, -1 when empty.
+        Hash cells holding slot numbers, -1 when empty, :data:`TOMBSTONE` when deleted.
     """
 
     out_weight: np.ndarray
     out_degree: np.ndarray
     start: np.ndarray
     cap: np.ndarray
-    src: np.ndarray
     dst: np.ndarray
     weight: np.ndarray
     table: np.ndarray
     free_blocks: np.ndarray = field(default_factory=lambda: np.full(32, -1, dtype=np.int32))
     # scalars packed in one array so that kernels can update them in place:
-    # [0] slots handed out to blocks (top), [1] unused, [2] live edges, [3] hash shift,
-    # [4] live edges whose weight is not 1 (0 lets sweeps skip reading the weights)
-    counters: np.ndarray = field(default_factory=lambda: np.array([0, -1, 0, 0, 0], dtype=np.int64))
+    # [0] slots handed out to blocks (top), [1] tombstones in the hash table, [2] live edges,
+    # [3] hash shift, [4] live edges whose weight is not 1 (0 lets sweeps skip reading the weights)
+    counters: np.ndarray = field(default_factory=lambda: np.array([0, 0, 0, 0, 0], dtype=np.int64))
+
+    @property
+    def src(self) -> np.ndarray:
+        """Source of the edge in each slot, -1 in a slot holding none.
+
+        Derived from the blocks on each access (O(slots)), for checks and
+        tests: the store itself keeps no source per slot.
+        """
+        return slot_owners(self.start, self.out_degree, self.dst.shape[0])
 
 
 def _grown(array: np.ndarray, size: int, fill: float | int) -> np.ndarray:
@@ -144,13 +199,12 @@ class DynamicGraph:
     def __init__(self, node_capacity: int = 1024, edge_capacity: int = 4096) -> None:
         node_capacity = max(int(node_capacity), 16)
         edge_capacity = max(int(edge_capacity), 16)
-        bits = _table_bits(int(edge_capacity / MAX_LOAD) + 1)
+        bits = _table_bits(int(edge_capacity / REHASH_LOAD) + 1)
         self.arrays = GraphArrays(
             out_weight=np.zeros(node_capacity, dtype=np.float64),
             out_degree=np.zeros(node_capacity, dtype=np.int32),
             start=np.zeros(node_capacity, dtype=np.int32),
             cap=np.zeros(node_capacity, dtype=np.int32),
-            src=np.full(edge_capacity, _EMPTY, dtype=np.int32),
             dst=np.full(edge_capacity, _EMPTY, dtype=np.int32),
             weight=np.zeros(edge_capacity, dtype=np.float64),
             table=np.full(1 << bits, _EMPTY, dtype=np.int32),
@@ -174,6 +228,11 @@ class DynamicGraph:
         return int(self.arrays.start.shape[0])
 
     @property
+    def slot_capacity(self) -> int:
+        """Slots allocated (handed out to blocks or not)."""
+        return int(self.arrays.dst.shape[0])
+
+    @property
     def top(self) -> int:
         """Slots handed out to blocks so far (live edges plus slack)."""
         return int(self.arrays.counters[0])
@@ -188,20 +247,25 @@ class DynamicGraph:
         if n_nodes > self.node_capacity:
             self._grow_nodes(max(n_nodes, 2 * self.node_capacity))
             grew_nodes = True
-        a = self.arrays
-        # new edges mostly go into the blocks' slack or into doubled blocks: room for two
-        # slots each at the tail covers the usual case; the kernels report the rest
-        self.reserve_slots(2 * n_new_edges)
-        if (self.n_edges + n_new_edges) > MAX_LOAD * a.table.shape[0]:
-            self._rehash(self.n_edges + n_new_edges)
+        # a bulk insert packs each block to its degree plus a quarter plus one slot
+        # (presize_blocks); smaller batches mostly fill the blocks' slack. When a block
+        # must move and no room is left, the kernels stop and Engine.apply grows the arrays.
+        self.reserve_slots(n_new_edges + n_new_edges // 4 + max(n_nodes - self.n_nodes, 0))
+        self.reserve_cells(n_new_edges)
         self.n_nodes = max(self.n_nodes, n_nodes)
         return grew_nodes
+
+    def reserve_cells(self, n_new_edges: int) -> None:
+        """Rebuild the hash table (larger, or just without tombstones) unless ``n_new_edges`` entries fit."""
+        a = self.arrays
+        if self.n_edges + int(a.counters[1]) + n_new_edges > MAX_LOAD * a.table.shape[0]:
+            self._rehash(self.n_edges + n_new_edges)
 
     def reserve_slots(self, slots: int) -> None:
         """Make ``slots`` more slots available at the tail of the slot arrays."""
         a = self.arrays
-        if self.top + slots > a.src.shape[0]:
-            self._grow_edges(max(self.top + slots, a.src.shape[0] + a.src.shape[0] // 4))
+        if self.top + slots > a.dst.shape[0]:
+            self._grow_edges(max(self.top + slots, a.dst.shape[0] + a.dst.shape[0] // 4))
 
     def slots_for(self, degree: np.ndarray) -> np.ndarray:
         """Block sizes of a bulk load or compaction: the degree plus a quarter, at least 1 for a source."""
@@ -216,7 +280,6 @@ class DynamicGraph:
 
     def _grow_edges(self, size: int) -> None:
         a = self.arrays
-        a.src = _grown(a.src, size, -1)
         a.dst = _grown(a.dst, size, -1)
         a.weight = _grown(a.weight, size, 0.0)
 
@@ -229,28 +292,27 @@ class DynamicGraph:
         a = self.arrays
         sizes = self.slots_for(a.out_degree[: self.n_nodes].astype(np.int64))
         size = max(int(sizes.sum()) + int(sizes.sum()) // 4, 16)
-        src = np.full(size, _EMPTY, dtype=np.int32)
         dst = np.full(size, _EMPTY, dtype=np.int32)
         weight = np.zeros(size, dtype=np.float64)
-        compact_blocks(a.start, a.cap, a.out_degree, self.n_nodes, sizes, a.dst, a.weight, src, dst, weight,
+        compact_blocks(a.start, a.cap, a.out_degree, self.n_nodes, sizes, a.dst, a.weight, dst, weight,
                        a.free_blocks, a.counters)
-        a.src, a.dst, a.weight = src, dst, weight
+        a.dst, a.weight = dst, weight
         self._rehash(self.n_edges)
 
     def _rehash(self, n_edges: int) -> None:
+        """A new table with at most :data:`REHASH_LOAD` of its cells used by ``n_edges`` entries."""
         a = self.arrays
-        bits = _table_bits(int(n_edges / MAX_LOAD) + 1)
+        bits = _table_bits(int(n_edges / REHASH_LOAD) + 1)
         a.table = np.full(1 << bits, _EMPTY, dtype=np.int32)
         a.counters[3] = 64 - bits
-        rebuild_hash(a.table, int(a.counters[3]), a.src, a.dst, self.top)
+        a.counters[1] = 0
+        rebuild_hash(a.table, int(a.counters[3]), a.start, a.out_degree, a.dst, self.n_nodes)
 
     # ------------------------------------------------------------------ views
     def edge_list(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """Live edges as ``(src, dst, weight)`` arrays, in slot order."""
+        """Live edges as ``(src, dst, weight)`` arrays, node by node (sources ascending)."""
         a = self.arrays
-        top = int(a.counters[0])
-        live = a.src[:top] >= 0
-        return a.src[:top][live].copy(), a.dst[:top][live].copy(), a.weight[:top][live].copy()
+        return gather_edges(a.start, a.out_degree, a.dst, a.weight, self.n_nodes)
 
     def exact_out_weight(self) -> np.ndarray:
         """Out-weights summed afresh from the edges (removes rounding drift)."""
@@ -267,13 +329,13 @@ class DynamicGraph:
     def memory_bytes(self) -> int:
         """Bytes held by the graph arrays (capacity included)."""
         a = self.arrays
-        parts = (a.out_weight, a.out_degree, a.start, a.cap, a.src, a.dst, a.weight, a.table)
+        parts = (a.out_weight, a.out_degree, a.start, a.cap, a.dst, a.weight, a.table, a.free_blocks, a.counters)
         return int(sum(x.nbytes for x in parts))
 
     def edge_memory_bytes(self) -> int:
-        """Bytes of the per-edge arrays (slots and hash cells)."""
+        """Bytes of the per-edge arrays (slot arrays at their capacity, and hash cells)."""
         a = self.arrays
-        return int(sum(x.nbytes for x in (a.src, a.dst, a.weight, a.table)))
+        return int(sum(x.nbytes for x in (a.dst, a.weight, a.table)))
 
 
 def _table_bits(cells: int) -> int:

@@ -31,7 +31,7 @@ import math
 import numpy as np
 from numba import njit, prange
 
-from .graph import hash_home
+from .graph import TOMBSTONE, hash_home
 
 OP_INSERT = 0
 OP_DELETE = 1
@@ -54,58 +54,67 @@ LOCAL_REPAIR_MAX_DEGREE = 64
 SWEEP_CHUNKS = 2
 
 # ---------------------------------------------------------------- hash table
+# A cell holds a slot number e. It is the pair (u, v) when e lies in u's block and
+# dst[e] == v: blocks never overlap, and the range test needs no memory access beyond
+# start[u] and out_degree[u], read once per lookup (see solver.graph).
 
 
 @njit(cache=True, inline="always")
-def find_cell(table, shift, src, dst, u, v):
+def find_cell(table, shift, start, out_degree, dst, u, v):
     """Hash cell holding the slot of ``u -> v``, or -1."""
+    deg = out_degree[u]
+    if deg == 0:
+        return -1
+    lo = start[u]
+    hi = lo + deg
     mask = table.shape[0] - 1
     i = hash_home(u, v, shift)
     while True:
         e = table[i]
         if e == -1:
             return -1
-        if src[e] == u and dst[e] == v:
+        if lo <= e < hi and dst[e] == v:  # a tombstone (-2) fails lo <= e
             return i
         i = (i + 1) & mask
 
 
 @njit(cache=True, inline="always")
-def _hash_insert(table, shift, u, v, e):
+def _hash_insert(table, shift, u, v, e, counters):
+    """Put slot ``e`` of the absent pair ``(u, v)`` in the first free or deleted cell of its probe."""
     mask = table.shape[0] - 1
     i = hash_home(u, v, shift)
-    while table[i] != -1:
+    while table[i] >= 0:
         i = (i + 1) & mask
+    if table[i] == TOMBSTONE:
+        counters[1] -= 1
     table[i] = e
 
 
 @njit(cache=True, inline="always")
-def _hash_remove(table, shift, src, dst, cell):
-    """Backward-shift deletion: keeps every probe chain unbroken, no tombstones."""
+def _hash_remove(table, cell, counters):
+    """Empty ``cell``: a tombstone, unless no probe can pass it (the next cell is empty).
+
+    The home cell of the other entries is unknown (no source per slot), so
+    entries cannot shift back; a run of tombstones ending at an empty cell is
+    emptied instead, which keeps their count low under churn.
+    """
     mask = table.shape[0] - 1
-    hole = cell
-    j = cell
-    while True:
-        j = (j + 1) & mask
-        e = table[j]
-        if e == -1:
-            break
-        home = hash_home(src[e], dst[e], shift)
-        # the entry at j may move into the hole unless its home lies in (hole, j]
-        if hole <= j:
-            stays = hole < home <= j
-        else:
-            stays = home > hole or home <= j
-        if not stays:
-            table[hole] = e
-            hole = j
-    table[hole] = -1
+    if table[(cell + 1) & mask] != -1:
+        table[cell] = TOMBSTONE
+        counters[1] += 1
+        return
+    table[cell] = -1
+    i = (cell - 1) & mask
+    while table[i] == TOMBSTONE:
+        table[i] = -1
+        counters[1] -= 1
+        i = (i - 1) & mask
 
 
 # ---------------------------------------------------------------- out-edge blocks
 # Node u's out-edges fill slots start[u] .. start[u] + out_degree[u] - 1 of its block of
 # cap[u] slots (see solver.graph). Free blocks wait in lists by size class c (at least
-# 2**c slots), linked through dst[first slot]; every slot outside a live edge has src -1.
+# 2**c slots), linked through dst[first slot].
 
 
 @njit(cache=True, inline="always")
@@ -124,8 +133,13 @@ def _alloc_block(size, free_blocks, counters, capacity, e_dst):
     b = free_blocks[c]
     if b >= 0:
         free_blocks[c] = e_dst[b]
-        e_dst[b] = -1
         return b
+    return _alloc_top(size, counters, capacity)
+
+
+@njit(cache=True, inline="always")
+def _alloc_top(size, counters, capacity):
+    """First slot of ``size`` new slots at the tail, or -1 when the arrays are full."""
     top = counters[0]
     if top + size > capacity:
         return -1
@@ -143,28 +157,86 @@ def _free_block(b, size, free_blocks, counters, e_dst):
 
 
 @njit(cache=True, inline="always")
-def _grow_block(u, start, cap, out_degree, e_src, e_dst, e_w, free_blocks, table, counters):
-    """Move u's out-edges to a block twice as large (at least 2 slots); False when no room is left."""
+def _move_block(u, b, new_size, start, cap, out_degree, e_dst, e_w, free_blocks, table, counters):
+    """Move u's out-edges to the block at ``b`` of ``new_size`` slots and free the old one."""
     old, size = start[u], cap[u]
-    new_size = 2
-    while new_size < 2 * size:
-        new_size *= 2
-    b = _alloc_block(new_size, free_blocks, counters, e_src.shape[0], e_dst)
-    if b < 0:
-        return False
     shift = counters[3]
     for j in range(out_degree[u]):
         y = e_dst[old + j]
-        table[find_cell(table, shift, e_src, e_dst, u, y)] = b + j
-        e_src[b + j] = u
+        # looked up while start[u] is still the old block
+        table[find_cell(table, shift, start, out_degree, e_dst, u, y)] = b + j
         e_dst[b + j] = y
         e_w[b + j] = e_w[old + j]
-        e_src[old + j] = -1
-        e_dst[old + j] = -1
     _free_block(old, size, free_blocks, counters, e_dst)
     start[u] = b
     cap[u] = new_size
+
+
+@njit(cache=True, inline="always")
+def _grow_block(u, start, cap, out_degree, e_dst, e_w, free_blocks, table, counters):
+    """Move u's out-edges to a block of the next power of two (at least 2 slots); False when no room is left."""
+    size = cap[u]
+    new_size = 2
+    while new_size <= size:
+        new_size *= 2
+    b = _alloc_block(new_size, free_blocks, counters, e_dst.shape[0], e_dst)
+    if b < 0:
+        return False
+    _move_block(u, b, new_size, start, cap, out_degree, e_dst, e_w, free_blocks, table, counters)
     return True
+
+
+@njit(cache=True, nogil=True)
+def presize_blocks(nodes, sizes, start, cap, out_degree, e_dst, e_w, free_blocks, table, counters):
+    """Move the block of each ``nodes[i]`` to ``sizes[i]`` new slots at the tail, unless it holds that many.
+
+    Run before a batch of many inserts (``sizes`` from the batch's insert
+    counts), so that a block reaches its final size in one move instead of
+    doubling, and a bulk insert leaves no more slack than a bulk load. Returns
+    the number of nodes done (fewer when the slot arrays are full).
+    """
+    for i in range(nodes.shape[0]):
+        u = nodes[i]
+        if sizes[i] <= cap[u]:
+            continue
+        b = _alloc_top(sizes[i], counters, e_dst.shape[0])
+        if b < 0:
+            return i
+        if cap[u] == 0:
+            start[u] = b
+            cap[u] = sizes[i]
+        else:
+            _move_block(u, b, sizes[i], start, cap, out_degree, e_dst, e_w, free_blocks, table, counters)
+    return nodes.shape[0]
+
+
+# ---------------------------------------------------------------- batches
+
+
+@njit(cache=True, nogil=True)
+def check_batch(op, src, dst, wt, min_weight, max_weight):
+    """One pass over a batch: ``(first bad event or -1, 1 + largest node id, inserts)``.
+
+    An event is bad when a node id is negative, an insert weight lies outside
+    ``[min_weight, max_weight]`` (NaN included) or a seed weight is neither 0
+    nor in that range. ``dst`` of a seed is a profile row, not a node.
+    """
+    top = 0
+    inserts = 0
+    for i in range(op.shape[0]):
+        kind = op[i]
+        u = src[i]
+        w = wt[i]
+        ok = min_weight <= w <= max_weight
+        if u < 0 or (kind == OP_INSERT and not ok) or (kind == OP_SEED and not (ok or w == 0.0)):
+            return i, top, inserts
+        if kind != OP_SEED:
+            if dst[i] < 0:
+                return i, top, inserts
+            top = max(top, dst[i] + 1)
+        top = max(top, u + 1)
+        inserts += kind == OP_INSERT
+    return -1, top, inserts
 
 
 # ---------------------------------------------------------------- repair
@@ -248,7 +320,7 @@ def _out_weight_sum(start, out_degree, e_w, u):
 @njit(cache=True, nogil=True)
 def apply_events(
     op, src, dst, wt,
-    start, cap, out_weight, out_degree, e_src, e_dst, e_w, free_blocks, table, counters,
+    start, cap, out_weight, out_degree, e_dst, e_w, free_blocks, table, counters,
     P, R, S, a, d, active, n_active, in_active, parked, seed_error, local_max_degree, psum, first,
 ):
     """Apply events ``first ..`` of one batch in order and repair every profile.
@@ -292,7 +364,7 @@ def apply_events(
             _mark(v, u, R, active, n_active, in_active, parked)
             R[v, u] += change
             continue
-        cell = find_cell(table, shift, e_src, e_dst, u, v)
+        cell = find_cell(table, shift, start, out_degree, e_dst, u, v)
         if kind == OP_INSERT:
             w_new = wt[i]
             if cell >= 0:
@@ -306,14 +378,13 @@ def apply_events(
             else:
                 w_old = 0.0
                 deg = out_degree[u]
-                if deg == cap[u] and not _grow_block(u, start, cap, out_degree, e_src, e_dst, e_w,
+                if deg == cap[u] and not _grow_block(u, start, cap, out_degree, e_dst, e_w,
                                                      free_blocks, table, counters):
                     return noop, i
                 e = start[u] + deg
-                e_src[e] = u
                 e_dst[e] = v
                 e_w[e] = w_new
-                _hash_insert(table, shift, u, v, e)
+                _hash_insert(table, shift, u, v, e, counters)
                 out_degree[u] = deg + 1
                 counters[2] += 1
                 counters[4] += int(w_new != 1.0)
@@ -324,16 +395,14 @@ def apply_events(
             e = table[cell]
             w_old = e_w[e]
             w_new = 0.0
-            _hash_remove(table, shift, e_src, e_dst, cell)
+            _hash_remove(table, cell, counters)
             last = start[u] + out_degree[u] - 1
             if e != last:
                 # the block stays packed: its last edge fills the hole
                 y = e_dst[last]
-                table[find_cell(table, shift, e_src, e_dst, u, y)] = e
+                table[find_cell(table, shift, start, out_degree, e_dst, u, y)] = e
                 e_dst[e] = y
                 e_w[e] = e_w[last]
-            e_src[last] = -1
-            e_dst[last] = -1
             out_degree[u] -= 1
             counters[2] -= 1
             counters[4] -= int(w_old != 1.0)
@@ -362,7 +431,7 @@ def apply_events(
 
 
 @njit(cache=True, nogil=True)
-def load_edges(src, dst, wt, sizes, start, cap, out_weight, out_degree, e_src, e_dst, e_w, table, counters):
+def load_edges(src, dst, wt, sizes, start, cap, out_weight, out_degree, e_dst, e_w, table, counters):
     """Bulk-load distinct edges into an empty graph: one block of ``sizes[u]`` slots per node, in node order.
 
     The state equals that of inserting them one by one with
@@ -382,13 +451,12 @@ def load_edges(src, dst, wt, sizes, start, cap, out_weight, out_degree, e_src, e
     for i in range(src.shape[0]):
         u = src[i]
         v = dst[i]
-        if find_cell(table, shift, e_src, e_dst, u, v) >= 0:
+        if find_cell(table, shift, start, out_degree, e_dst, u, v) >= 0:
             return i
         e = start[u] + out_degree[u]
-        e_src[e] = u
         e_dst[e] = v
         e_w[e] = wt[i]
-        _hash_insert(table, shift, u, v, e)
+        _hash_insert(table, shift, u, v, e, counters)
         out_degree[u] += 1
         out_weight[u] += wt[i]
         counters[2] += 1
