@@ -311,18 +311,22 @@ class Engine:
         bad, top, n_inserts = kernels.check_batch(op, src, dst, weight, MIN_WEIGHT, MAX_WEIGHT)
         if bad >= 0:
             _reject(int(bad), op, src, dst, weight)
-        self.ensure_nodes(max(int(top), self.n_nodes), int(n_inserts))
-        if n_inserts >= max(PRESIZE_MIN_INSERTS, PRESIZE_SHARE * self.n_edges):
+        graph = self.graph
+        if top > graph.n_nodes:
+            self.ensure_nodes(int(top), int(n_inserts))
+        elif n_inserts:
+            graph.reserve_edges(int(n_inserts))
+        if n_inserts >= PRESIZE_MIN_INSERTS and n_inserts >= PRESIZE_SHARE * graph.n_edges:
             self._presize(op, src)
-        noop, done = 0, 0
+        more, done = self._apply_from(op, src, dst, weight, 0)
+        noop = int(more)
         while done < op.size:
-            if done:
-                # a block had to move and the slot arrays were full: grow them, go on from there
-                self.graph.reserve_slots(2 * int(self.graph.arrays.cap[src[done]]) + 2 * (op.size - done))
+            # a block had to move and the slot arrays were full: grow them, go on from there
+            graph.reserve_slots(2 * int(graph.arrays.cap[src[done]]) + 2 * (op.size - done))
             more, done = self._apply_from(op, src, dst, weight, done)
             noop += int(more)
-        if self.graph.needs_compaction():
-            self.graph.compact()
+        if graph.needs_compaction():
+            graph.compact()
         return noop
 
     def _apply_from(self, op: np.ndarray, src: np.ndarray, dst: np.ndarray, weight: np.ndarray,

@@ -247,13 +247,17 @@ class DynamicGraph:
         if n_nodes > self.node_capacity:
             self._grow_nodes(max(n_nodes, 2 * self.node_capacity))
             grew_nodes = True
+        self.reserve_edges(n_new_edges, max(n_nodes - self.n_nodes, 0))
+        self.n_nodes = max(self.n_nodes, n_nodes)
+        return grew_nodes
+
+    def reserve_edges(self, n_new_edges: int, n_new_nodes: int = 0) -> None:
+        """Slots and hash cells for ``n_new_edges`` more edges (of which ``n_new_nodes`` start a block)."""
         # a bulk insert packs each block to its degree plus a quarter plus one slot
         # (presize_blocks); smaller batches mostly fill the blocks' slack. When a block
         # must move and no room is left, the kernels stop and Engine.apply grows the arrays.
-        self.reserve_slots(n_new_edges + n_new_edges // 4 + max(n_nodes - self.n_nodes, 0))
+        self.reserve_slots(n_new_edges + n_new_edges // 4 + n_new_nodes)
         self.reserve_cells(n_new_edges)
-        self.n_nodes = max(self.n_nodes, n_nodes)
-        return grew_nodes
 
     def reserve_cells(self, n_new_edges: int) -> None:
         """Rebuild the hash table (larger, or just without tombstones) unless ``n_new_edges`` entries fit."""
@@ -285,7 +289,8 @@ class DynamicGraph:
 
     def needs_compaction(self) -> bool:
         """Slack passed :data:`COMPACT_SLACK` of the stored edges (and the floor)."""
-        return self.top - self.n_edges > max(COMPACT_SLACK * self.n_edges, COMPACT_FLOOR)
+        top, _, edges = self.arrays.counters[:3].tolist()
+        return top - edges > max(COMPACT_SLACK * edges, COMPACT_FLOOR)
 
     def compact(self) -> None:
         """Rewrite every block in node order with a quarter of slack; rebuild the hash table (O(edges))."""
