@@ -41,8 +41,11 @@ OP_SEED = 2
 #: ``p(u)`` [2]; at or below it, the residual of every out-neighbour is
 #: corrected instead (O(deg u)). Both keep the invariant exactly; the second
 #: leaves a residual that sums to zero, which cancels out as it spreads
-#: instead of having to be absorbed by teleportation (see DEVELOPERS.md).
-LOCAL_REPAIR_MAX_DEGREE = 64
+#: instead of having to be absorbed by teleportation (see DEVELOPERS.md). Each
+#: corrected neighbour costs a random access (about 65 ns at 200k nodes, most of
+#: ``apply``'s time at 64); at 24 the settles after the medium bench's batches did
+#: no more work under the per-node contract (measured in DEVELOPERS.md).
+LOCAL_REPAIR_MAX_DEGREE = 24
 
 # Kernels release the interpreter lock (``nogil``): the service's fetch thread
 # decodes the next Kafka batch meanwhile.
