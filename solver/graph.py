@@ -30,8 +30,8 @@ sweep reads the blocks node by node.
 
 Memory per stored edge: 12 bytes per slot (a bulk load or bulk insert leaves
 a quarter of slack, so about 15 bytes) plus 4 bytes per hash cell (at most
-:data:`MAX_LOAD` of the cells used, at least a quarter after a rebuild): about
-21 to 31 bytes in all. :meth:`DynamicGraph.memory_bytes` counts the arrays'
+:data:`MAX_LOAD` of the cells used, at least 0.3 after a rebuild): about
+21 to 29 bytes in all. :meth:`DynamicGraph.memory_bytes` counts the arrays'
 capacity, not only the slots in use.
 
 All mutation happens inside the compiled kernels of :mod:`solver.kernels`;
@@ -50,7 +50,8 @@ from numba import njit
 MAX_LOAD = 0.7
 #: Largest load right after a rebuild: the table then takes at least ``MAX_LOAD - REHASH_LOAD``
 #: of its cells in new entries or tombstones before the next rebuild (amortised O(1)).
-REHASH_LOAD = 0.5
+#: 0.6 keeps 10M edges in 2**24 cells (0.5 would double the table at the large size).
+REHASH_LOAD = 0.6
 #: Slack (slots handed out to blocks but holding no edge) that triggers a compaction,
 #: as a share of the stored edges; plus a floor so that small graphs never compact.
 COMPACT_SLACK = 0.6
