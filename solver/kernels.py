@@ -29,7 +29,10 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from numba import njit, prange
+from llvmlite import ir
+from numba import njit, prange, types
+from numba.core import cgutils
+from numba.extending import intrinsic
 
 from .graph import TOMBSTONE, hash_home
 
@@ -55,6 +58,37 @@ LOCAL_REPAIR_MAX_DEGREE = 24
 
 #: Fixed number of node chunks a global sweep is split into (see :func:`scatter_nodes`).
 SWEEP_CHUNKS = 2
+
+# ---------------------------------------------------------------- prefetch
+
+
+@intrinsic
+def prefetch(typingctx, arr, i, j):
+    """Ask the CPU to bring ``arr[i]`` (1-D, ``j`` ignored) or ``arr[i, j]`` (2-D) into cache.
+
+    A hint (``llvm.prefetch``): no result, no fault, nothing waits for it.
+    Reading the value instead would stall the core once the miss reaches the
+    end of its reorder window, which is what the hint avoids.
+    """
+    if not isinstance(arr, types.Array) or arr.ndim not in (1, 2):
+        return None
+    sig = types.void(arr, i, j)
+
+    def codegen(context, builder, signature, args):
+        aryty = signature.args[0]
+        ary = context.make_array(aryty)(context, builder, args[0])
+        index = [context.cast(builder, args[n], signature.args[n], types.intp) for n in range(1, 1 + aryty.ndim)]
+        ptr = cgutils.get_item_pointer(context, builder, aryty, ary, index, wraparound=False)
+        byte_ptr = ir.IntType(8).as_pointer()
+        fnty = ir.FunctionType(ir.VoidType(), [byte_ptr, ir.IntType(32), ir.IntType(32), ir.IntType(32)])
+        fn = cgutils.get_or_insert_function(builder.module, fnty, "llvm.prefetch.p0")
+        i32 = ir.IntType(32)
+        # read access, keep in all cache levels, data cache
+        builder.call(fn, [builder.bitcast(ptr, byte_ptr), ir.Constant(i32, 0), ir.Constant(i32, 3), ir.Constant(i32, 1)])
+        return context.get_dummy_value()
+
+    return sig, codegen
+
 
 # ---------------------------------------------------------------- hash table
 # A cell holds a slot number e. It is the pair (u, v) when e lies in u's block and
@@ -320,6 +354,53 @@ def _out_weight_sum(start, out_degree, e_w, u):
     return total
 
 
+#: Events ahead whose node data and hash cell :func:`apply_events` prefetches (the
+#: cache misses of several events then overlap), and, half as far ahead, the block.
+PREFETCH_AHEAD = 8
+
+
+@njit(cache=True, inline="always")
+def _prefetch_nodes(kind, u, v, table, shift, start, cap, out_weight, out_degree, P, R, in_active):
+    """Prefetch what an edge event on ``u -> v`` reads first: its hash cell, u's arrays, every profile's p and r."""
+    if kind == OP_SEED:
+        return
+    prefetch(table, hash_home(u, v, shift), 0)
+    prefetch(start, u, 0)
+    prefetch(out_degree, u, 0)
+    prefetch(cap, u, 0)
+    prefetch(out_weight, u, 0)
+    for k in range(P.shape[0]):
+        prefetch(P, k, u)
+        prefetch(R, k, u)
+        prefetch(R, k, v)
+        prefetch(in_active, k, u)
+        prefetch(in_active, k, v)
+
+
+@njit(cache=True, inline="always")
+def _prefetch_neighbours(kind, u, start, out_degree, e_dst, R, in_active, local_max_degree):
+    """Prefetch r and the active flag of u's out-neighbours, which a neighbour repair will correct."""
+    if kind == OP_SEED or out_degree[u] > local_max_degree:
+        return
+    first = start[u]
+    for e in range(first, first + out_degree[u]):
+        y = e_dst[e]
+        for k in range(R.shape[0]):
+            prefetch(R, k, y)
+            prefetch(in_active, k, y)
+
+
+@njit(cache=True, inline="always")
+def _prefetch_block(kind, u, start, out_degree, e_dst, e_w):
+    """Prefetch the end of u's block (where an insert goes, and what a delete moves); its start for a repair."""
+    if kind == OP_SEED:
+        return
+    first = start[u]
+    prefetch(e_dst, first, 0)
+    prefetch(e_dst, first + out_degree[u], 0)
+    prefetch(e_w, first + out_degree[u], 0)
+
+
 @njit(cache=True, nogil=True)
 def apply_events(
     op, src, dst, wt,
@@ -351,7 +432,20 @@ def apply_events(
     shift = counters[3]
     n_prof = P.shape[0]
     noop = 0
-    for i in range(first, op.shape[0]):
+    end = op.shape[0]
+    far = PREFETCH_AHEAD
+    near = PREFETCH_AHEAD // 2
+    nearest = PREFETCH_AHEAD // 4
+    for i in range(first, min(first + far, end)):
+        _prefetch_nodes(op[i], src[i], dst[i], table, shift, start, cap, out_weight, out_degree, P, R, in_active)
+    for i in range(first, end):
+        if i + far < end:
+            _prefetch_nodes(op[i + far], src[i + far], dst[i + far], table, shift, start, cap, out_weight,
+                            out_degree, P, R, in_active)
+        if i + near < end:
+            _prefetch_block(op[i + near], src[i + near], start, out_degree, e_dst, e_w)
+        if i + nearest < end:
+            _prefetch_neighbours(op[i + nearest], src[i + nearest], start, out_degree, e_dst, R, in_active, local_max_degree)
         kind = op[i]
         u = src[i]
         v = dst[i]
