@@ -134,8 +134,8 @@ def _check_weights(op: np.ndarray, weight: np.ndarray) -> None:
 
 def _reject(i: int, op: np.ndarray, src: np.ndarray, dst: np.ndarray, weight: np.ndarray) -> None:
     """Raise the ValueError for event ``i``, found bad by :func:`kernels.check_batch`."""
-    if src[i] < 0 or (op[i] != kernels.OP_SEED and dst[i] < 0):
-        raise ValueError(f"event {i}: negative node id ({int(src[i])} -> {int(dst[i])})")
+    if src[i] < 0 or dst[i] < 0:
+        raise ValueError(f"event {i}: negative node id or profile row ({int(src[i])} -> {int(dst[i])})")
     raise ValueError(f"event {i}: weight {weight[i]!r} outside [{MIN_WEIGHT:g}, {MAX_WEIGHT:g}] "
                      "(seeds may also be 0)")
 

@@ -254,7 +254,7 @@ def presize_blocks(nodes, sizes, start, cap, out_degree, e_dst, e_w, free_blocks
 def check_batch(op, src, dst, wt, min_weight, max_weight):
     """One pass over a batch: ``(first bad event or -1, 1 + largest node id, inserts)``.
 
-    An event is bad when a node id is negative, an insert weight lies outside
+    An event is bad when a node id or profile row is negative, an insert weight lies outside
     ``[min_weight, max_weight]`` (NaN included) or a seed weight is neither 0
     nor in that range. ``dst`` of a seed is a profile row, not a node.
     """
@@ -265,11 +265,9 @@ def check_batch(op, src, dst, wt, min_weight, max_weight):
         u = src[i]
         w = wt[i]
         ok = min_weight <= w <= max_weight
-        if u < 0 or (kind == OP_INSERT and not ok) or (kind == OP_SEED and not (ok or w == 0.0)):
+        if u < 0 or dst[i] < 0 or (kind == OP_INSERT and not ok) or (kind == OP_SEED and not (ok or w == 0.0)):
             return i, top, inserts
         if kind != OP_SEED:
-            if dst[i] < 0:
-                return i, top, inserts
             top = max(top, dst[i] + 1)
         top = max(top, u + 1)
         inserts += kind == OP_INSERT
