@@ -158,7 +158,8 @@ def _throughput_lines(t: dict) -> list[str]:
     return [
         f"Engine throughput over {t['events']:,} mixed events in micro-batches of {t['micro_batch']:,} "
         f"(the service's default; growth of the edge arrays included)",
-        f"  apply alone          {t['apply_only_events_per_second']:,.0f} events/s",
+        f"  apply alone          {t['apply_only_events_per_second']:,.0f} events/s "
+        f"({t['apply_only_events_per_cpu_second']:,.0f} per CPU second of the applying thread)",
         f"  apply + settle       {t['apply_and_settle_events_per_second']:,.0f} events/s "
         f"(settle {100 * t['settle_seconds'] / (t['apply_seconds'] + t['settle_seconds']):.0f} % of the time, "
         f"{t['edge_touches_per_event']:,.1f} edge touches per event, {t['sweeps']} sweeps, bound after {t['certified_bound_after']:.2g})",
