@@ -25,7 +25,6 @@ References
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -78,6 +77,8 @@ PUSH_EDGE_FLOOR = 50_000
 #: Safety factor on the per-node thresholds: the running residual carries rounding
 #: (about 1e-12 relative), far below this margin.
 THRESHOLD_MARGIN = 0.99
+#: How a run of global sweeps under the per-node contract ended (``Engine._sweep_to_thresholds``).
+SWEEPS_PUSH_ON, SWEEPS_DONE, SWEEPS_STALLED = 0, 1, 2
 
 #: A personalization's error budget ``rtol / (1 + rtol)`` is split in four: the part
 #: relative to its own scores, the absolute part at hubs, the shift of its sum, slack.
@@ -185,7 +186,8 @@ class Engine:
         self.R = np.zeros((1, cap))
         self.S = np.zeros((1, cap))
         self._active = np.zeros((1, cap), dtype=np.int32)
-        self._in_active = np.zeros((1, cap), dtype=np.bool_)
+        # per node and profile: kernels.ACTIVE (on the active list), kernels.QUEUED (in the push queue)
+        self._flags = np.zeros((1, cap), dtype=np.uint8)
         self._n_active = np.zeros(1, dtype=np.int64)
         self._parked = np.zeros(1)  # residual mass of nodes parked off the active lists
         self._parked_max = np.zeros(1)  # largest |r| parked since the last full listing
@@ -197,7 +199,6 @@ class Engine:
         self.set_targets(rtol, tolerance, certified_top)
         self._seed_error = np.zeros(1)  # rounding bound of seed updates to the residual, per profile
         self._queue = np.zeros(cap, dtype=np.int32)
-        self._in_queue = np.zeros(cap, dtype=np.bool_)
         self._tmp = np.zeros(cap)
         self._spill = np.zeros((kernels.SWEEP_CHUNKS - 1, cap))  # partial sums of parallel sweeps
 
@@ -241,7 +242,7 @@ class Engine:
         self.R = np.vstack([self.R, np.zeros(cap)])
         self.S = np.vstack([self.S, np.zeros(cap)])
         self._active = np.vstack([self._active, np.zeros(cap, dtype=np.int32)])
-        self._in_active = np.vstack([self._in_active, np.zeros(cap, dtype=np.bool_)])
+        self._flags = np.vstack([self._flags, np.zeros(cap, dtype=np.uint8)])
         self._n_active = np.append(self._n_active, 0)
         self._parked = np.append(self._parked, 0.0)
         self._parked_max = np.append(self._parked_max, 0.0)
@@ -263,10 +264,10 @@ class Engine:
             self.S[0, old:n_nodes] = 1.0
             self.R[0, old:n_nodes] += 1.0
             new = np.arange(old, n_nodes, dtype=np.int32)
-            fresh = new[~self._in_active[0, old:n_nodes]]
+            fresh = new[(self._flags[0, old:n_nodes] & kernels.ACTIVE) == 0]
             start = int(self._n_active[0])
             self._active[0, start : start + fresh.size] = fresh
-            self._in_active[0, fresh] = True
+            self._flags[0, fresh] |= kernels.ACTIVE
             self._n_active[0] += fresh.size
 
     def _grow_node_arrays(self, cap: int) -> None:
@@ -276,9 +277,8 @@ class Engine:
             return out
 
         self.P, self.R, self.S = grow(self.P), grow(self.R), grow(self.S)
-        self._active, self._in_active = grow(self._active), grow(self._in_active)
+        self._active, self._flags = grow(self._active), grow(self._flags)
         self._queue = np.zeros(cap, dtype=np.int32)
-        self._in_queue = np.zeros(cap, dtype=np.bool_)
         self._tmp = np.zeros(cap)
         self._spill = np.zeros((kernels.SWEEP_CHUNKS - 1, cap))
 
@@ -338,7 +338,7 @@ class Engine:
             g.start, g.cap, g.out_weight, g.out_degree, g.dst, g.weight, g.free_blocks,
             g.table, g.counters,
             self.P, self.R, self.S, self.teleport, self.damping,
-            self._active, self._n_active, self._in_active, self._parked, self._seed_error,
+            self._active, self._n_active, self._flags, self._parked, self._seed_error,
             kernels.LOCAL_REPAIR_MAX_DEGREE, self._psum, first,
         )
 
@@ -436,32 +436,28 @@ class Engine:
         ``||r||_1``, so a threshold chosen from ``delta`` after pushing stays
         valid; thresholds come from a ladder of quarter octaves below the
         largest one, so that small changes of ``delta`` do not unpark nodes.
+        The ladder runs inside one kernel (:func:`solver.kernels.push_global`):
+        a settle after a few events is one call.
         """
-        stats = SettleStats()
-        weights = Weights(0.0, self._global_limit(0.0))  # the top rung: delta is usually tiny
-        self._weights[0] = weights
-        for _ in range(64):
-            stats.add(self._push_and_sweep(0, weights))
-            limit = self._global_limit(self._sum_shift(0))
-            if weights.beta <= limit:
+        g = self.graph.arrays
+        stats = np.zeros(5, dtype=np.int64)
+        edge_limit = max(PUSH_EDGE_SHARE * self.n_edges, PUSH_EDGE_FLOOR)
+        beta = self._global_limit(0.0)  # the top rung: delta is usually tiny
+        for _ in range(1_000):
+            handover, beta = kernels.push_global(
+                self.n_nodes, self.n_edges, g.start, g.out_weight, g.out_degree, g.dst, g.weight,
+                self.P, self.R, self.S, self.teleport, self.damping,
+                self._active, self._n_active, self._flags, self._parked, self._parked_max, self._queue,
+                edge_limit, stats, self._psum, self.graph.unit_weights, self.rtol, THRESHOLD_MARGIN, beta,
+            )
+            if not handover or self._sweep_to_thresholds(0, Weights(0.0, beta), edge_limit, stats) == SWEEPS_STALLED:
                 break
-            weights = Weights(0.0, self._ladder(limit, weights.beta))
-            self._weights[0] = weights
-        return stats
+        self._weights[0] = Weights(0.0, beta)
+        return SettleStats(*(int(x) for x in stats))
 
     def _global_limit(self, delta: float) -> float:
         """Largest ``max |r_g|`` certifying ``rtol`` given the sum shift ``delta`` (0 if none does)."""
-        target = self.rtol / (1.0 + self.rtol)
-        q = target * (1.0 - delta) - delta
-        return THRESHOLD_MARGIN * q / (1.0 + q) if q > 0.0 else 0.0
-
-    def _ladder(self, limit: float, current: float) -> float:
-        """The largest rung ``top * 2**(-j/4)`` at most ``limit``, and below ``current``."""
-        top = self._global_limit(0.0)
-        if limit <= 0.0:
-            return current / 2.0
-        rungs = max(math.ceil(4.0 * math.log2(top / limit) - 1e-9), 0)
-        return min(top * 2.0 ** (-rungs / 4.0), current / 2.0 ** 0.25)
+        return kernels.global_limit(delta, self.rtol, THRESHOLD_MARGIN)
 
     def _personal_weights(self, k: int, previous: Weights | None, fresh: bool) -> Weights:
         """Thresholds ``alpha s + beta`` under which personalization ``k`` meets ``rtol``.
@@ -545,22 +541,27 @@ class Engine:
         stats = np.zeros(5, dtype=np.int64)
         if self._parked_max[k] > weights.beta:
             # thresholds fell below residuals parked earlier: list every node again
-            kernels.relist_active(k, self.R, n, self._active, self._n_active, self._in_active, self._parked)
+            kernels.relist_active(k, self.R, n, self._active, self._n_active, self._flags, self._parked)
             self._parked_max[k] = 0.0
         edge_limit = max(PUSH_EDGE_SHARE * self.n_edges, PUSH_EDGE_FLOOR)
+        unit = self.graph.unit_weights
         for _ in range(1_000):
             handover = kernels.push_to_thresholds(
                 k, n, self.n_edges, g.start, g.out_weight, g.out_degree, g.dst, g.weight,
                 self.P, self.R, self.S, weights.alpha, weights.beta, self.teleport, self.damping,
-                self._active, self._n_active, self._in_active, self._parked,
-                self._queue, self._in_queue, edge_limit, stats, self._psum,
+                self._active, self._n_active, self._flags, self._parked,
+                self._queue, edge_limit, stats, self._psum, unit,
             )
-            if not handover or not self._sweep_to_thresholds(k, weights, edge_limit, stats):
+            if not handover or self._sweep_to_thresholds(k, weights, edge_limit, stats) != SWEEPS_PUSH_ON:
                 break
         return SettleStats(*(int(x) for x in stats))
 
-    def _sweep_to_thresholds(self, k: int, weights: Weights, edge_limit: float, stats: np.ndarray) -> bool:
-        """Global sweeps until pushes can finish; returns True when pushes should go on.
+    def _sweep_to_thresholds(self, k: int, weights: Weights, edge_limit: float, stats: np.ndarray) -> int:
+        """Global sweeps until pushes can finish.
+
+        Returns :data:`SWEEPS_PUSH_ON` (pushes should finish the work),
+        :data:`SWEEPS_DONE` (every node is within its threshold) or
+        :data:`SWEEPS_STALLED` (rounding stops progress).
 
         Sweeps shrink the residual everywhere but slowly at hubs, where it
         keeps flowing in; so they stop once the nodes still above their
@@ -581,9 +582,11 @@ class Engine:
             best = min(best, worst)
             if stalled >= 50:
                 break  # rounding floor: the certificate reports what was reached
-        kernels.relist_active(k, self.R, n, self._active, self._n_active, self._in_active, self._parked)
+        kernels.relist_active(k, self.R, n, self._active, self._n_active, self._flags, self._parked)
         self._parked_max[k] = 0.0
-        return worst > 1.0 and stalled < 50
+        if stalled >= 50:
+            return SWEEPS_STALLED
+        return SWEEPS_PUSH_ON if worst > 1.0 else SWEEPS_DONE
 
     def certificate(self, profile: str = GLOBAL) -> Certificate:
         """Certified per-node bounds of ``profile``'s published scores, and the contract they meet.
@@ -618,8 +621,8 @@ class Engine:
             k, tol, self.n_nodes, self.n_edges,
             g.start, g.out_weight, g.out_degree, g.dst, g.weight,
             self.P, self.R, self.teleport, self.damping,
-            self._active, self._n_active, self._in_active, self._parked,
-            self._queue, self._in_queue, SWEEP_SHARE, THETA_STEP, PUSH_LIMIT, stats,
+            self._active, self._n_active, self._flags, self._parked,
+            self._queue, SWEEP_SHARE, THETA_STEP, PUSH_LIMIT, stats,
         )
         if sweep:
             s_p = self._sweep_until_done(k, tol, rho, s_p, abs_p, stats)
@@ -645,7 +648,7 @@ class Engine:
             stalled = stalled + 1 if rho >= before else 0
             if stalled >= 50:
                 break  # rounding floor reached: the bound reported is what it is
-        kernels.relist_active(k, self.R, n, self._active, self._n_active, self._in_active, self._parked)
+        kernels.relist_active(k, self.R, n, self._active, self._n_active, self._flags, self._parked)
         self._parked_max[k] = 0.0
         return s_p
 
@@ -679,7 +682,7 @@ class Engine:
             each = kernels.park_threshold(k, self.R, self._active, self._n_active, budget - self._parked[k])
         if self.rtol is not None:
             each = min(each, self._weights[k].beta)
-        largest = kernels.compact_active(k, self.R, self._active, self._n_active, self._in_active, self._parked,
+        largest = kernels.compact_active(k, self.R, self._active, self._n_active, self._flags, self._parked,
                                          budget, each)
         self._parked_max[k] = max(self._parked_max[k], largest)
 
@@ -769,10 +772,10 @@ class Engine:
         n = self.n_nodes
         self._parked[k] = 0.0
         self._parked_max[k] = 0.0
-        self._in_active[k, :] = False
+        self._flags[k, :] = 0
         nz = np.flatnonzero(self.R[k, :n]).astype(np.int32)
         self._active[k, : nz.size] = nz
-        self._in_active[k, nz] = True
+        self._flags[k, nz] = kernels.ACTIVE
         self._n_active[k] = nz.size
 
     def exact_scores(self, profile: str = GLOBAL, tol: float = 1e-12, warm: bool = False) -> np.ndarray:
@@ -826,8 +829,8 @@ class Engine:
 
     def memory_bytes(self) -> dict[str, int]:
         """Bytes held: graph arrays, per-edge arrays alone, profile arrays."""
-        prof = sum(x.nbytes for x in (self.P, self.R, self.S, self._active, self._in_active))
-        prof += self._queue.nbytes + self._in_queue.nbytes + self._tmp.nbytes
+        prof = sum(x.nbytes for x in (self.P, self.R, self.S, self._active, self._flags))
+        prof += self._queue.nbytes + self._tmp.nbytes
         return {
             "graph": self.graph.memory_bytes(),
             "edges": self.graph.edge_memory_bytes(),

@@ -29,12 +29,10 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from llvmlite import ir
-from numba import njit, prange, types
-from numba.core import cgutils
-from numba.extending import intrinsic
+from numba import njit, prange
 
 from .graph import TOMBSTONE, hash_home
+from .prefetch import prefetch, prefetch_2d
 
 OP_INSERT = 0
 OP_DELETE = 1
@@ -56,39 +54,17 @@ LOCAL_REPAIR_MAX_DEGREE = 24
 # between compiled functions passes each array with reference counting, which
 # made the push loop three times slower than its memory traffic.
 
+#: Bits of a node's per-profile flags (``Engine._flags``): on the profile's
+#: active list, and waiting in the push queue. One byte per node holds both, so
+#: a pushed edge reads one byte of state besides the residual.
+ACTIVE = np.uint8(1)
+QUEUED = np.uint8(2)
+#: How many queued nodes ahead a push prefetches the node records, and (half as
+#: far) the out-edge block.
+PREFETCH_AHEAD = 4
+
 #: Fixed number of node chunks a global sweep is split into (see :func:`scatter_nodes`).
 SWEEP_CHUNKS = 2
-
-# ---------------------------------------------------------------- prefetch
-
-
-@intrinsic
-def prefetch(typingctx, arr, i, j):
-    """Ask the CPU to bring ``arr[i]`` (1-D, ``j`` ignored) or ``arr[i, j]`` (2-D) into cache.
-
-    A hint (``llvm.prefetch``): no result, no fault, nothing waits for it.
-    Reading the value instead would stall the core once the miss reaches the
-    end of its reorder window, which is what the hint avoids.
-    """
-    if not isinstance(arr, types.Array) or arr.ndim not in (1, 2):
-        return None
-    sig = types.void(arr, i, j)
-
-    def codegen(context, builder, signature, args):
-        aryty = signature.args[0]
-        ary = context.make_array(aryty)(context, builder, args[0])
-        index = [context.cast(builder, args[n], signature.args[n], types.intp) for n in range(1, 1 + aryty.ndim)]
-        ptr = cgutils.get_item_pointer(context, builder, aryty, ary, index, wraparound=False)
-        byte_ptr = ir.IntType(8).as_pointer()
-        fnty = ir.FunctionType(ir.VoidType(), [byte_ptr, ir.IntType(32), ir.IntType(32), ir.IntType(32)])
-        fn = cgutils.get_or_insert_function(builder.module, fnty, "llvm.prefetch.p0")
-        i32 = ir.IntType(32)
-        # read access, keep in all cache levels, data cache
-        builder.call(fn, [builder.bitcast(ptr, byte_ptr), ir.Constant(i32, 0), ir.Constant(i32, 3), ir.Constant(i32, 1)])
-        return context.get_dummy_value()
-
-    return sig, codegen
-
 
 # ---------------------------------------------------------------- hash table
 # A cell holds a slot number e. It is the pair (u, v) when e lies in u's block and
@@ -278,15 +254,16 @@ def check_batch(op, src, dst, wt, min_weight, max_weight):
 
 
 @njit(cache=True, inline="always")
-def _mark(k, v, R, active, n_active, in_active, parked):
+def _mark(k, v, R, active, n_active, flags, parked):
     """Put ``v`` on profile ``k``'s active list; call it *before* changing ``R[k, v]``.
 
     A node taken off the list with a small residual is *parked*: its residual
-    stays counted in ``parked[k]`` until it comes back here.
+    stays counted in ``parked[k]`` until it comes back here. ``flags`` holds
+    the :data:`ACTIVE` bit.
     """
-    if not in_active[k, v]:
+    if not (flags[k, v] & ACTIVE):
         parked[k] -= abs(R[k, v])  # no inner branch: it keeps the push loop fast
-        in_active[k, v] = True
+        flags[k, v] |= ACTIVE
         active[k, n_active[k]] = v
         n_active[k] += 1
 
@@ -353,39 +330,40 @@ def _out_weight_sum(start, out_degree, e_w, u):
 
 
 #: Events ahead whose node data and hash cell :func:`apply_events` prefetches (the
-#: cache misses of several events then overlap), and, half as far ahead, the block.
-PREFETCH_AHEAD = 8
+#: cache misses of several events then overlap); half as far ahead, the block; a
+#: quarter as far, the out-neighbours' residuals.
+APPLY_PREFETCH_AHEAD = 8
 
 
 @njit(cache=True, inline="always")
-def _prefetch_nodes(kind, u, v, table, shift, start, cap, out_weight, out_degree, P, R, in_active):
+def _prefetch_nodes(kind, u, v, table, shift, start, cap, out_weight, out_degree, P, R, flags):
     """Prefetch what an edge event on ``u -> v`` reads first: its hash cell, u's arrays, every profile's p and r."""
     if kind == OP_SEED:
         return
-    prefetch(table, hash_home(u, v, shift), 0)
-    prefetch(start, u, 0)
-    prefetch(out_degree, u, 0)
-    prefetch(cap, u, 0)
-    prefetch(out_weight, u, 0)
+    prefetch(table, hash_home(u, v, shift))
+    prefetch(start, u)
+    prefetch(out_degree, u)
+    prefetch(cap, u)
+    prefetch(out_weight, u)
     for k in range(P.shape[0]):
-        prefetch(P, k, u)
-        prefetch(R, k, u)
-        prefetch(R, k, v)
-        prefetch(in_active, k, u)
-        prefetch(in_active, k, v)
+        prefetch_2d(P, k, u)
+        prefetch_2d(R, k, u)
+        prefetch_2d(R, k, v)
+        prefetch_2d(flags, k, u)
+        prefetch_2d(flags, k, v)
 
 
 @njit(cache=True, inline="always")
-def _prefetch_neighbours(kind, u, start, out_degree, e_dst, R, in_active, local_max_degree):
-    """Prefetch r and the active flag of u's out-neighbours, which a neighbour repair will correct."""
+def _prefetch_neighbours(kind, u, start, out_degree, e_dst, R, flags, local_max_degree):
+    """Prefetch r and the flags of u's out-neighbours, which a neighbour repair will correct."""
     if kind == OP_SEED or out_degree[u] > local_max_degree:
         return
     first = start[u]
     for e in range(first, first + out_degree[u]):
         y = e_dst[e]
         for k in range(R.shape[0]):
-            prefetch(R, k, y)
-            prefetch(in_active, k, y)
+            prefetch_2d(R, k, y)
+            prefetch_2d(flags, k, y)
 
 
 @njit(cache=True, inline="always")
@@ -394,9 +372,9 @@ def _prefetch_block(kind, u, start, out_degree, e_dst, e_w):
     if kind == OP_SEED:
         return
     first = start[u]
-    prefetch(e_dst, first, 0)
-    prefetch(e_dst, first + out_degree[u], 0)
-    prefetch(e_w, first + out_degree[u], 0)
+    prefetch(e_dst, first)
+    prefetch(e_dst, first + out_degree[u])
+    prefetch(e_w, first + out_degree[u])
 
 
 @njit(cache=True, nogil=True)
@@ -431,9 +409,9 @@ def apply_events(
     n_prof = P.shape[0]
     noop = 0
     end = op.shape[0]
-    far = PREFETCH_AHEAD
-    near = PREFETCH_AHEAD // 2
-    nearest = PREFETCH_AHEAD // 4
+    far = APPLY_PREFETCH_AHEAD
+    near = APPLY_PREFETCH_AHEAD // 2
+    nearest = APPLY_PREFETCH_AHEAD // 4
     for i in range(first, min(first + far, end)):
         _prefetch_nodes(op[i], src[i], dst[i], table, shift, start, cap, out_weight, out_degree, P, R, in_active)
     for i in range(first, end):
@@ -677,22 +655,24 @@ def is_done(rho, s_p, abs_p, tol):
 
 
 @njit(cache=True, nogil=True)
-def relist_active(k, R, n, active, n_active, in_active, parked):
+def relist_active(k, R, n, active, n_active, flags, parked):
     """After sweeps every node may carry residual: list all that do, park none."""
     n_active[k] = 0
     parked[k] = 0.0
     for u in range(n):
-        in_active[k, u] = R[k, u] != 0.0
-        if in_active[k, u]:
+        if R[k, u] != 0.0:
+            flags[k, u] = ACTIVE
             active[k, n_active[k]] = u
             n_active[k] += 1
+        else:
+            flags[k, u] = 0
 
 
 @njit(cache=True, nogil=True)
 def settle_profile(
     k, tol, n, m,
     start, out_weight, out_degree, e_dst, e_w,
-    P, R, a, d, active, n_active, in_active, parked, queue, in_queue, sweep_share, theta_step,
+    P, R, a, d, active, n_active, flags, parked, queue, sweep_share, theta_step,
     push_limit, stats,
 ):
     """Push profile ``k`` until its certified bound is at most ``tol``, or hand over to sweeps.
@@ -747,8 +727,8 @@ def settle_profile(
         frontier = 0
         for i in range(n_active[k]):
             u = active[k, i]
-            if abs(R[k, u]) > theta * max(out_degree[u], 1) and not in_queue[u]:
-                in_queue[u] = True
+            if abs(R[k, u]) > theta * max(out_degree[u], 1) and not (flags[k, u] & QUEUED):
+                flags[k, u] |= QUEUED
                 queue[qt] = u
                 qt += 1
                 frontier += out_degree[u]
@@ -757,7 +737,7 @@ def settle_profile(
             qt = 0  # every node is due: the ring buffer is full and its tail wraps
         if frontier > sweep_share * m:
             for j in range(pending):
-                in_queue[queue[j]] = False
+                flags[k, queue[j]] &= ~QUEUED
             sweeping = True
             continue
         while pending > 0 and not _done(rho, s_p, abs_p, tol):
@@ -766,7 +746,7 @@ def settle_profile(
             if qh == cap:
                 qh = 0
             pending -= 1
-            in_queue[u] = False
+            flags[k, u] &= ~QUEUED
             ru = R[k, u]
             limit = theta * max(out_degree[u], 1)
             if abs(ru) <= limit:
@@ -784,13 +764,13 @@ def settle_profile(
             scale = d * ru / W
             for e in range(start[u], start[u] + out_degree[u]):
                 v = e_dst[e]
-                _mark(k, v, R, active, n_active, in_active, parked)
+                _mark(k, v, R, active, n_active, flags, parked)
                 before = R[k, v]
                 after = before + scale * e_w[e]
                 R[k, v] = after
                 rho += abs(after) - abs(before)
-                if not in_queue[v] and abs(after) > theta * max(out_degree[v], 1):
-                    in_queue[v] = True
+                if not (flags[k, v] & QUEUED) and abs(after) > theta * max(out_degree[v], 1):
+                    flags[k, v] |= QUEUED
                     queue[qt] = v
                     qt += 1
                     if qt == cap:
@@ -798,7 +778,7 @@ def settle_profile(
                     pending += 1
                 stats[1] += 1
         while pending > 0:
-            in_queue[queue[qh]] = False
+            flags[k, queue[qh]] &= ~QUEUED
             qh += 1
             if qh == cap:
                 qh = 0
@@ -847,7 +827,7 @@ def park_threshold(k, R, active, n_active, budget):
 
 
 @njit(cache=True, nogil=True)
-def compact_active(k, R, active, n_active, in_active, parked, park_budget, park_each):
+def compact_active(k, R, active, n_active, flags, parked, park_budget, park_each):
     """Shorten profile ``k``'s active list.
 
     Nodes with a zero residual leave it; nodes with ``|r| <= park_each`` are
@@ -862,9 +842,9 @@ def compact_active(k, R, active, n_active, in_active, parked, park_budget, park_
         u = active[k, i]
         r = abs(R[k, u])
         if r == 0.0:
-            in_active[k, u] = False
+            flags[k, u] &= ~ACTIVE
         elif r <= park_each and parked[k] + r <= park_budget:
-            in_active[k, u] = False
+            flags[k, u] &= ~ACTIVE
             parked[k] += r
             largest = max(largest, r)
         else:
@@ -882,11 +862,43 @@ def _threshold(S, k, u, alpha, beta):
     return alpha * S[k, u] + beta
 
 
+@njit(cache=True, inline="always")
+def _queue_due(k, R, S, alpha, beta, flags, active, n_active, queue):
+    """Queue every active node above its threshold; return how many."""
+    qt = 0
+    for i in range(n_active[k]):
+        u = active[k, i]
+        if abs(R[k, u]) > _threshold(S, k, u, alpha, beta) and not (flags[k, u] & QUEUED):
+            flags[k, u] |= QUEUED
+            queue[qt] = u
+            qt += 1
+    return qt
+
+
+@njit(cache=True, inline="always")
+def _prefetch_ahead(queue, qh, pending, start, out_weight, out_degree, e_dst, e_w, Rk, unit):
+    """Prefetch the record of the node ``PREFETCH_AHEAD`` places ahead, and the block of the one half as far."""
+    cap = queue.shape[0]
+    if pending > PREFETCH_AHEAD:
+        j = qh + PREFETCH_AHEAD
+        w = queue[j - cap if j >= cap else j]
+        prefetch(start, w)
+        prefetch(out_degree, w)
+        prefetch(out_weight, w)
+        prefetch(Rk, w)
+    if pending > PREFETCH_AHEAD // 2:
+        j = qh + PREFETCH_AHEAD // 2
+        b = start[queue[j - cap if j >= cap else j]]
+        prefetch(e_dst, b)
+        if not unit:
+            prefetch(e_w, b)
+
+
 @njit(cache=True, nogil=True)
 def push_to_thresholds(
     k, n, m,
     start, out_weight, out_degree, e_dst, e_w,
-    P, R, S, alpha, beta, a, d, active, n_active, in_active, parked, queue, in_queue, edge_limit, stats, psum,
+    P, R, S, alpha, beta, a, d, active, n_active, flags, parked, queue, edge_limit, stats, psum, unit,
 ):
     """Forward push, first in first out, until every active ``|r(u)| <= alpha s(u) + beta``.
 
@@ -902,38 +914,45 @@ def push_to_thresholds(
     the start carry more than that many out-edges, the kernel stops and
     returns 1, and the caller continues with global sweeps.
 
+    A pushed edge costs a read of the residual and of one flag byte (the
+    node's :data:`ACTIVE` and :data:`QUEUED` bits together); with ``alpha = 0``
+    the threshold is the constant ``beta``, and with ``unit`` (every weight 1)
+    the weights are not read. The next queued nodes' records and blocks are
+    prefetched (:func:`_prefetch_ahead`).
+
     Returns 0 when every active node meets its threshold, 1 to hand over to
     sweeps. ``stats`` accumulates [0] pushes and [1] edges touched.
     """
     cap = queue.shape[0]
-    qt = 0
+    uniform = alpha == 0.0
+    Rk = R[k]
+    fk = flags[k]
+    qt = _queue_due(k, R, S, alpha, beta, flags, active, n_active, queue)
     frontier = 0
-    for i in range(n_active[k]):
-        u = active[k, i]
-        if abs(R[k, u]) > _threshold(S, k, u, alpha, beta) and not in_queue[u]:
-            in_queue[u] = True
-            queue[qt] = u
-            qt += 1
-            frontier += out_degree[u]
+    for i in range(qt):
+        frontier += out_degree[queue[i]]
     pending = qt
     if qt == cap:
         qt = 0
     qh = 0
     touched = 0
+    listed = n_active[k]
+    unparked = 0.0
     handover = frontier > edge_limit
     while pending > 0 and not handover:
+        _prefetch_ahead(queue, qh, pending, start, out_weight, out_degree, e_dst, e_w, Rk, unit)
         u = queue[qh]
         qh += 1
         if qh == cap:
             qh = 0
         pending -= 1
-        in_queue[u] = False
-        ru = R[k, u]
-        if abs(ru) <= _threshold(S, k, u, alpha, beta):
+        fk[u] &= ~QUEUED
+        ru = Rk[u]
+        if abs(ru) <= (beta if uniform else _threshold(S, k, u, alpha, beta)):
             continue
         P[k, u] += a * ru
         psum[k] += a * ru
-        R[k, u] = 0.0
+        Rk[u] = 0.0
         stats[0] += 1
         W = out_weight[u]
         if W <= 0.0:
@@ -941,27 +960,103 @@ def push_to_thresholds(
         scale = d * ru / W
         for e in range(start[u], start[u] + out_degree[u]):
             v = e_dst[e]
-            _mark(k, v, R, active, n_active, in_active, parked)
-            after = R[k, v] + scale * e_w[e]
-            R[k, v] = after
-            if not in_queue[v] and abs(after) > _threshold(S, k, v, alpha, beta):
-                in_queue[v] = True
+            f = fk[v]
+            r = Rk[v]
+            if not (f & ACTIVE):
+                # what _mark does, with the list length and parked mass kept in locals
+                unparked += abs(r)
+                active[k, listed] = v
+                listed += 1
+                f |= ACTIVE
+            after = r + (scale if unit else scale * e_w[e])
+            Rk[v] = after
+            if not (f & QUEUED) and abs(after) > (beta if uniform else _threshold(S, k, v, alpha, beta)):
+                f |= QUEUED
                 queue[qt] = v
                 qt += 1
                 if qt == cap:
                     qt = 0
                 pending += 1
+            fk[v] = f
         touched += out_degree[u]
         if touched > edge_limit:
             handover = True
+    n_active[k] = listed
+    parked[k] -= unparked
     stats[1] += touched
     while pending > 0:
-        in_queue[queue[qh]] = False
+        fk[queue[qh]] &= ~QUEUED
         qh += 1
         if qh == cap:
             qh = 0
         pending -= 1
     return 1 if handover else 0
+
+
+@njit(cache=True, inline="always")
+def _sum_shift(k, R, active, n_active, parked, psum):
+    """``||r_k||_1 / sum p_k`` (``inf`` before any estimate), as ``Engine._sum_shift``."""
+    r1 = active_l1(k, R, active, n_active, parked)
+    if r1 == 0.0:
+        return 0.0
+    return r1 / psum[k] if psum[k] > r1 else np.inf
+
+
+@njit(cache=True, inline="always")
+def global_limit(delta, rtol, margin):
+    """Largest ``max |r_g|`` certifying ``rtol`` given the sum shift ``delta`` (0 if none does).
+
+    The certified relative error ``(rho / (1 - rho) + delta) / (1 - delta)``
+    must stay within ``rtol / (1 + rtol)`` (``solver.bounds``); ``margin`` < 1
+    keeps a sliver for rounding.
+    """
+    q = rtol / (1.0 + rtol) * (1.0 - delta) - delta
+    return margin * q / (1.0 + q) if q > 0.0 else 0.0
+
+
+@njit(cache=True, inline="always")
+def ladder_rung(limit, current, top):
+    """The largest rung ``top * 2**(-j/4)`` at most ``limit``, and below ``current``."""
+    if limit <= 0.0:
+        return current / 2.0
+    rungs = max(math.ceil(4.0 * math.log2(top / limit) - 1e-9), 0)
+    return min(top * 2.0 ** (-rungs / 4.0), current / 2.0 ** 0.25)
+
+
+@njit(cache=True, nogil=True)
+def push_global(
+    n, m, start, out_weight, out_degree, e_dst, e_w,
+    P, R, S, a, d, active, n_active, flags, parked, parked_max, queue, edge_limit, stats, psum, unit,
+    rtol, margin, beta,
+):
+    """Push the global profile (row 0) down the threshold ladder until ``rtol`` is certified.
+
+    Pushes to the constant threshold ``beta`` (:func:`push_to_thresholds`),
+    then checks it against the largest threshold the sum shift now allows
+    (:func:`global_limit`); if ``beta`` is above it, steps down the ladder of
+    quarter octaves (:func:`ladder_rung`) and pushes again. Pushes never raise
+    ``||r||_1``, so a threshold that holds after pushing stays valid. One call
+    does a whole settle of the global profile unless the pushes hand over to
+    sweeps.
+
+    Returns ``(handover, beta)``: with ``handover`` 1 the caller runs global
+    sweeps (from Python, see :func:`scatter_nodes`) and calls again with the
+    returned ``beta``.
+    """
+    top = global_limit(0.0, rtol, margin)
+    for _ in range(64):
+        if parked_max[0] > beta:
+            # the threshold fell below residuals parked earlier: list every node again
+            relist_active(0, R, n, active, n_active, flags, parked)
+            parked_max[0] = 0.0
+        if push_to_thresholds(0, n, m, start, out_weight, out_degree, e_dst, e_w, P, R, S, 0.0, beta, a, d,
+                              active, n_active, flags, parked, queue, edge_limit, stats, psum, unit):
+            return 1, beta
+        limit = global_limit(_sum_shift(0, R, active, n_active, parked, psum), rtol, margin)
+        if beta <= limit:
+            break
+        beta = ladder_rung(limit, beta, top)
+    return 0, beta
 
 
 @njit(cache=True, nogil=True)
