@@ -3,10 +3,12 @@
 from __future__ import annotations
 
 import json
+import logging
 import sys
 import time
 from dataclasses import dataclass, field, replace
 from pathlib import Path
+from typing import Iterator
 
 import numpy as np
 
@@ -16,6 +18,8 @@ from ranktide.stream.logs import LogChunk, read_log, row_count_hint, seed_person
 from ranktide.stream.rootlock import RootLock
 from ranktide.stream.snapshots import (Counters, OutputError, SnapshotError, load_snapshot, select_snapshot,
                                        snapshot_dirs, write_snapshot)
+
+logger = logging.getLogger("ranktide.replay")
 
 
 @dataclass
@@ -94,6 +98,19 @@ class ReplaySummary:
         out += [f"bound[{name}]  {b:.3g} (certified normalised L1 error)" for name, b in self.bounds.items()]
         out.append(f"time           {self.seconds:.2f} s")
         return out
+
+
+@dataclass
+class Timings:
+    """Seconds a replay spent in each phase (logged at DEBUG level, read by ``ranktide bench``)."""
+
+    read_parse: float = 0.0
+    apply: float = 0.0
+    snapshot: float = 0.0
+
+    def line(self, total: float) -> str:
+        return (f"replay timing: read+parse {self.read_parse:.3f} s, apply {self.apply:.3f} s (ids interned "
+                f"included), snapshot {self.snapshot:.3f} s, total {total:.3f} s")
 
 
 class RejectsWriter:
@@ -253,6 +270,17 @@ def _segment_batch(chunk: LogChunk, seg: Segment) -> tuple[EventBatch, int]:
     return p.batch.slice(int(lo), int(hi)), int(rhi - rlo)
 
 
+def _timed_chunks(chunks: Iterator[LogChunk], timings: Timings) -> Iterator[LogChunk]:
+    """The chunks, adding the time spent reading and parsing each to ``timings.read_parse``."""
+    while True:
+        started = time.perf_counter()
+        chunk = next(chunks, None)
+        timings.read_parse += time.perf_counter() - started
+        if chunk is None:
+            return
+        yield chunk
+
+
 def _position_after(chunk: LogChunk, row: int) -> tuple[int, int]:
     """(offset, lines read) once input rows below ``row`` are consumed."""
     if row >= chunk.lines.size:
@@ -269,6 +297,7 @@ class _Replay:
         self.rejects = RejectsWriter(self.out / "rejects.jsonl", str(self.log))
         self.ranker, self.counters, self.offset, self.line, self.skip = self._start()
         self.written: list[Path] = []
+        self.timings = Timings()
         self.started_wall = time.monotonic()
 
     def _start(self):
@@ -293,8 +322,10 @@ class _Replay:
         return out
 
     def snapshot(self) -> Path:
+        started = time.perf_counter()
         path = write_snapshot(self.out, self.ranker, self.counters, self.positions())
         self.written.append(path)
+        self.timings.snapshot += time.perf_counter() - started
         return path
 
     def run(self, bar) -> None:
@@ -304,13 +335,15 @@ class _Replay:
         if rows:
             engine = self.ranker.engine
             engine.ensure_nodes(engine.n_nodes, max(rows - self.offset, 0))
-        chunks = read_log(self.log, opts.limits, self.offset, self.line + 1)
+        chunks = _timed_chunks(read_log(self.log, opts.limits, self.offset, self.line + 1), self.timings)
         for chunk in chunks:
             chunk = self._drop_covered(chunk)
             for seg in plan.segments(chunk):
                 self._wait(seg)
                 batch, rejected = _segment_batch(chunk, seg)
+                started = time.perf_counter()
                 apply_events(self.ranker, batch, self.counters, opts.micro_batch)
+                self.timings.apply += time.perf_counter() - started
                 self.counters.events_rejected += rejected
                 self.offset, self.line = _position_after(chunk, seg.stop)
                 self._note_kafka(chunk, seg)
@@ -412,6 +445,7 @@ def replay_log(log: Path, out: Path, options: ReplayOptions = ReplayOptions()) -
     finally:
         lock.release()
     ranker = state.ranker
+    logger.debug(state.timings.line(time.perf_counter() - started))
     return ReplaySummary(
         snapshot=path,
         counters=state.counters,
