@@ -4,7 +4,9 @@ from __future__ import annotations
 
 import json
 import logging
+import queue
 import sys
+import threading
 import time
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -104,13 +106,15 @@ class ReplaySummary:
 class Timings:
     """Seconds a replay spent in each phase (logged at DEBUG level, read by ``ranktide bench``)."""
 
-    read_parse: float = 0.0
+    read_parse: float = 0.0  # in the reader thread, overlapping the rest
+    waiting: float = 0.0  # for the reader thread
     apply: float = 0.0
     snapshot: float = 0.0
 
     def line(self, total: float) -> str:
-        return (f"replay timing: read+parse {self.read_parse:.3f} s, apply {self.apply:.3f} s (ids interned "
-                f"included), snapshot {self.snapshot:.3f} s, total {total:.3f} s")
+        return (f"replay timing: read+parse {self.read_parse:.3f} s (in a reader thread; waited for "
+                f"{self.waiting:.3f} s), apply {self.apply:.3f} s (ids interned included), snapshot "
+                f"{self.snapshot:.3f} s, total {total:.3f} s")
 
 
 class RejectsWriter:
@@ -281,6 +285,53 @@ def _timed_chunks(chunks: Iterator[LogChunk], timings: Timings) -> Iterator[LogC
         yield chunk
 
 
+def _prefetched(chunks: Iterator[LogChunk], timings: Timings, depth: int = 2) -> Iterator[LogChunk]:
+    """The chunks in order, read and parsed up to ``depth`` ahead by a worker thread.
+
+    Arrow's JSON reader and the compiled kernels release the interpreter lock,
+    so parsing the next chunks overlaps applying this one (and loading the
+    kernels at the start). An error of the reader is raised here, where the
+    chunk it broke would have come; leaving early stops the worker.
+    """
+    ready: queue.Queue = queue.Queue(maxsize=depth)
+    stop = threading.Event()
+    worker = threading.Thread(target=_produce, args=(_timed_chunks(chunks, timings), ready, stop),
+                              name="replay-reader", daemon=True)
+    worker.start()
+    try:
+        while True:
+            started = time.perf_counter()
+            kind, item = ready.get()
+            timings.waiting += time.perf_counter() - started
+            if kind == "error":
+                raise item
+            if kind == "end":
+                return
+            yield item
+    finally:
+        stop.set()
+        while worker.is_alive():  # free a worker blocked on a full queue
+            try:
+                ready.get(timeout=0.05)
+            except queue.Empty:
+                pass
+        worker.join()
+
+
+def _produce(chunks: Iterator[LogChunk], ready: queue.Queue, stop: threading.Event) -> None:
+    """Worker of :func:`_prefetched`: put ("chunk", c) items, then ("end", None) or ("error", exc)."""
+    try:
+        for chunk in chunks:
+            ready.put(("chunk", chunk))
+            if stop.is_set():
+                return
+        ready.put(("end", None))
+    except BaseException as exc:  # noqa: BLE001 - handed to the consuming thread, which raises it
+        ready.put(("error", exc))
+    finally:
+        chunks.close()
+
+
 def _position_after(chunk: LogChunk, row: int) -> tuple[int, int]:
     """(offset, lines read) once input rows below ``row`` are consumed."""
     if row >= chunk.lines.size:
@@ -335,31 +386,42 @@ class _Replay:
         if rows:
             engine = self.ranker.engine
             engine.ensure_nodes(engine.n_nodes, max(rows - self.offset, 0))
-        chunks = _timed_chunks(read_log(self.log, opts.limits, self.offset, self.line + 1), self.timings)
-        for chunk in chunks:
-            chunk = self._drop_covered(chunk)
-            for seg in plan.segments(chunk):
-                self._wait(seg)
-                batch, rejected = _segment_batch(chunk, seg)
-                started = time.perf_counter()
-                apply_events(self.ranker, batch, self.counters, opts.micro_batch)
-                self.timings.apply += time.perf_counter() - started
-                self.counters.events_rejected += rejected
-                self.offset, self.line = _position_after(chunk, seg.stop)
-                self._note_kafka(chunk, seg)
-                plan.advance(seg.stop - seg.start)
-                if seg.snapshot_after:
-                    self.snapshot()
-                if seg.stop_after:
-                    self.rejects.write_chunk(chunk, upto=seg.stop)
+        chunks = _prefetched(read_log(self.log, opts.limits, self.offset, self.line + 1), self.timings)
+        try:
+            for chunk in chunks:
+                if self._chunk(self._drop_covered(chunk), plan):
                     return
-            self.rejects.write_chunk(chunk)
-            if bar is not None:
-                bar.update(chunk.end_offset - bar.n)
-                rate = self.counters.events_applied / max(time.monotonic() - self.started_wall, 1e-9)
-                # the bound is that of the state so far; a replay settles before each snapshot
-                bar.set_postfix(events=f"{self.counters.events_applied:,}", per_s=f"{rate:,.0f}",
-                                bound=f"{self.ranker.certified_bound():.2g}")
+                self._show(bar, chunk)
+        finally:
+            chunks.close()  # stops the reader thread when leaving early
+
+    def _chunk(self, chunk: LogChunk, plan: "_Plan") -> bool:
+        """Apply one chunk segment by segment; True when --until stops the replay in it."""
+        for seg in plan.segments(chunk):
+            self._wait(seg)
+            batch, rejected = _segment_batch(chunk, seg)
+            started = time.perf_counter()
+            apply_events(self.ranker, batch, self.counters, self.options.micro_batch)
+            self.timings.apply += time.perf_counter() - started
+            self.counters.events_rejected += rejected
+            self.offset, self.line = _position_after(chunk, seg.stop)
+            self._note_kafka(chunk, seg)
+            plan.advance(seg.stop - seg.start)
+            if seg.snapshot_after:
+                self.snapshot()
+            if seg.stop_after:
+                self.rejects.write_chunk(chunk, upto=seg.stop)
+                return True
+        self.rejects.write_chunk(chunk)
+        return False
+
+    def _show(self, bar, chunk: LogChunk) -> None:
+        if bar is not None:
+            bar.update(chunk.end_offset - bar.n)
+            rate = self.counters.events_applied / max(time.monotonic() - self.started_wall, 1e-9)
+            # the bound is that of the state so far; a replay settles before each snapshot
+            bar.set_postfix(events=f"{self.counters.events_applied:,}", per_s=f"{rate:,.0f}",
+                            bound=f"{self.ranker.certified_bound():.2g}")
 
     def _wait(self, seg: Segment) -> None:
         if seg.wall_offset is not None:

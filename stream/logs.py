@@ -30,7 +30,8 @@ import pyarrow.parquet as pq
 
 from ranktide.solver import EventBatch, Ranker
 from ranktide.stream.events import (
-    ARROW_CONTENT_TYPE, FIELDS, Limits, Parsed, decode_values, parse_json_records, ts_millis, validate_table,
+    ARROW_CONTENT_TYPE, FIELDS, Limits, Parsed, decode_values, parse_json_block, parse_json_records, ts_millis,
+    validate_table,
 )
 
 CHUNK_BYTES = 8 << 20
@@ -199,24 +200,24 @@ def _read_jsonl(
 
 def _jsonl_chunk(body: bytes, offset: int, line_no: int, end_line: int, limits: Limits) -> LogChunk:
     text = body[:-1] if body.endswith(b"\n") else body
-    records = text.split(b"\n")
     starts = np.concatenate(([0], np.flatnonzero(np.frombuffer(text, np.uint8) == 10) + 1)).astype(np.int64)
     lengths = np.diff(np.append(starts, len(text) + 1)) - 1
-    blank = lengths == 0
-    if blank.any():
-        keep = np.flatnonzero(~blank)
-        records = [records[i] for i in keep]
+    # the whole chunk through Arrow's JSON reader at once; line by line only when it needs care
+    parsed = parse_json_block(text + b"\n" if text is not body else body, lengths, limits)
+    if parsed is not None:
+        keep = np.arange(lengths.size)
     else:
-        keep = np.arange(len(records))
-    parsed = parse_json_records(records, limits)
-    return LogChunk(
-        parsed,
-        line_no + keep.astype(np.int64),
-        offset + starts[keep],
-        offset + len(body),
-        end_line,
-        lambda i: records[i].decode("utf-8", "replace"),
-    )
+        records = text.split(b"\n")
+        keep = np.flatnonzero(lengths > 0)  # blank lines are no records
+        if keep.size < lengths.size:
+            records = [records[i] for i in keep]
+        parsed = parse_json_records(records, limits)
+
+    def raw(i: int) -> str:
+        row = int(keep[i])
+        return text[starts[row]:starts[row] + lengths[row]].decode("utf-8", "replace")
+
+    return LogChunk(parsed, line_no + keep.astype(np.int64), offset + starts[keep], offset + len(body), end_line, raw)
 
 
 def _table_chunk(table: pa.Table, first_row: int, limits: Limits, first_line: int) -> LogChunk:
