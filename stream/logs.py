@@ -199,15 +199,15 @@ def _read_jsonl(
 
 
 def _jsonl_chunk(body: bytes, offset: int, line_no: int, end_line: int, limits: Limits) -> LogChunk:
-    text = body[:-1] if body.endswith(b"\n") else body
-    starts = np.concatenate(([0], np.flatnonzero(np.frombuffer(text, np.uint8) == 10) + 1)).astype(np.int64)
-    lengths = np.diff(np.append(starts, len(text) + 1)) - 1
+    size = len(body) - 1 if body.endswith(b"\n") else len(body)  # without the last newline
+    starts = np.concatenate(([0], np.flatnonzero(np.frombuffer(body, np.uint8, count=size) == 10) + 1))
+    lengths = np.diff(np.append(starts, size + 1)) - 1
     # the whole chunk through Arrow's JSON reader at once; line by line only when it needs care
-    parsed = parse_json_block(text + b"\n" if text is not body else body, lengths, limits)
+    parsed = parse_json_block(body if size < len(body) else body + b"\n", lengths, limits)
     if parsed is not None:
         keep = np.arange(lengths.size)
     else:
-        records = text.split(b"\n")
+        records = body[:size].split(b"\n")
         keep = np.flatnonzero(lengths > 0)  # blank lines are no records
         if keep.size < lengths.size:
             records = [records[i] for i in keep]
@@ -215,9 +215,10 @@ def _jsonl_chunk(body: bytes, offset: int, line_no: int, end_line: int, limits: 
 
     def raw(i: int) -> str:
         row = int(keep[i])
-        return text[starts[row]:starts[row] + lengths[row]].decode("utf-8", "replace")
+        return body[starts[row]:starts[row] + lengths[row]].decode("utf-8", "replace")
 
-    return LogChunk(parsed, line_no + keep.astype(np.int64), offset + starts[keep], offset + len(body), end_line, raw)
+    return LogChunk(parsed, line_no + keep.astype(np.int64), offset + starts[keep].astype(np.int64),
+                    offset + len(body), end_line, raw)
 
 
 def _table_chunk(table: pa.Table, first_row: int, limits: Limits, first_line: int) -> LogChunk:
