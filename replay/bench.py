@@ -124,7 +124,8 @@ def run_all(args: argparse.Namespace, folder: Path) -> dict:
     report["peak_rss_bytes"] = _peak_rss_bytes()
     del tr, loaded
     report["replay"] = measure_replay(src0, dst0, folder)
-    report["replay"]["command"] = measure_replay_cli(src0, dst0, SIZES[args.size][0], sampler, folder, args.seed + 13)
+    report["replay"]["command"] = measure_replay_cli(src0, dst0, SIZES[args.size][0], sampler, folder,
+                                                     args.seed + 13, args.repeats)
     _say("bundled real graph")
     report["real_graph"] = measure_real_graph(args.repeats, args.seed, missing)
     if args.skip_e2e:

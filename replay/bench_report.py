@@ -192,7 +192,8 @@ def _replay_command_lines(c: dict) -> list[str]:
     verdict = "met" if c["meets_target"] else "MISSED"
     ratio = "n/a (orjson not installed)" if c["ratio"] is None else f"{c['ratio']:.2f}x"
     parts = [("interpreter", "interpreter_seconds"), ("imports", "imports_seconds"),
-             ("kernel loading", "kernel_loading_seconds"), ("read + parse", "read_parse_seconds"),
+             ("kernel loading", "kernel_loading_seconds"), ("read + parse (reader thread)", "read_parse_seconds"),
+             ("waiting for it", "waiting_for_parse_seconds"),
              ("apply (ids interned included)", "apply_seconds"), ("snapshot", "snapshot_seconds")]
     shown = ", ".join(f"{label} {_fmt_time(b[key])}" for label, key in parts if b.get(key) is not None)
     return [

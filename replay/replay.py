@@ -332,6 +332,20 @@ def _produce(chunks: Iterator[LogChunk], ready: queue.Queue, stop: threading.Eve
         chunks.close()
 
 
+def _load_kernels() -> None:
+    """Load the id-interning kernel from numba's cache, and numba's compiler state with it.
+
+    The first compiled call of a process sets numba up (about 0.5 s); made
+    here, on a throwaway id map, it overlaps the reader thread's parsing
+    instead of holding up the first chunk.
+    """
+    import pyarrow as pa
+
+    from ranktide.solver.ids import NodeIds
+
+    NodeIds().intern(pa.array(["-"], pa.string()))
+
+
 def _position_after(chunk: LogChunk, row: int) -> tuple[int, int]:
     """(offset, lines read) once input rows below ``row`` are consumed."""
     if row >= chunk.lines.size:
@@ -387,6 +401,7 @@ class _Replay:
             engine = self.ranker.engine
             engine.ensure_nodes(engine.n_nodes, max(rows - self.offset, 0))
         chunks = _prefetched(read_log(self.log, opts.limits, self.offset, self.line + 1), self.timings)
+        _load_kernels()  # while the reader thread parses the first chunks
         try:
             for chunk in chunks:
                 if self._chunk(self._drop_covered(chunk), plan):
