@@ -132,6 +132,8 @@ def replay_child(log: Path, out: Path) -> tuple[float, dict]:
     found = _TIMING.search(done.stderr)
     phases = {} if found is None else dict(zip(("read_parse", "waiting_for_parse", "apply", "snapshot", "replay_log"),
                                                map(float, found.groups())))
+    applied = re.search(r"events applied ([\d,]+)", done.stdout)
+    phases["events_applied"] = int(applied.group(1).replace(",", "")) if applied else None
     return seconds, phases
 
 
@@ -177,7 +179,9 @@ def measure_replay_cli(src: np.ndarray, dst: np.ndarray, n: int, sampler: PowerL
         "ratio": seconds / floor if floor else None, "repeats": repeats,
         "meets_target": bool(floor) and seconds / floor <= TARGET_RATIO,
         "command": "python -m ranktide.stream.cli replay LOG --out ROOT",
-        "breakdown": {**_fixed_costs(tiny, folder), "start_up_seconds": seconds - phases["replay_log"] if phases else None,
+        "events_applied": phases.pop("events_applied"),
+        "breakdown": {**_fixed_costs(tiny, folder),
+                      "start_up_seconds": seconds - phases["replay_log"] if "replay_log" in phases else None,
                       **{f"{k}_seconds": v for k, v in phases.items()},
                       "interning_seconds_in_process": interning_seconds(log)},
     })
