@@ -27,7 +27,8 @@ from pathlib import Path
 
 import numpy as np
 
-from ranktide.replay.bench_common import _say, _timed
+from ranktide.replay.bench_common import _say
+from ranktide.replay.bench_contenders import INSTALL_EXTRAS
 from ranktide.replay.bench_workloads import EdgeSet, new_edges
 from ranktide.replay.graphs import PowerLawSampler
 
@@ -173,6 +174,8 @@ def measure_replay_cli(src: np.ndarray, dst: np.ndarray, n: int, sampler: PowerL
         floors.append(orjson_floor(log))
         runs.append(replay_child(log, folder / f"replay-cli-{k}"))
     floor = None if floors[0] is None else float(np.median(floors))
+    if floor is None:
+        _say(f"replay command: orjson is not installed, so the floor is not measured ({INSTALL_EXTRAS})")
     seconds, phases = sorted(runs, key=lambda r: r[0])[len(runs) // 2]
     out.update({
         "orjson_floor_seconds": floor, "replay_seconds": seconds, "target_ratio": TARGET_RATIO,
