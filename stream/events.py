@@ -136,14 +136,15 @@ def parse_json_block(block: bytes, lengths: np.ndarray, limits: Limits = Limits(
         return None
     if not block[: int(lengths[0])].strip():
         return None
-    table = _read_block(block, int(lengths.size))
+    table = _read_block(block, int(lengths.size), threads=False)
     return None if table is None else validate_table(table, limits)
 
 
-def _read_block(blob: bytes, rows: int) -> pa.Table | None:
+def _read_block(blob: bytes, rows: int, threads: bool = True) -> pa.Table | None:
     """The table Arrow's JSON reader makes of ``blob``, or None unless it reads exactly ``rows`` rows."""
     try:
-        table = pj.read_json(pa.BufferReader(blob), parse_options=_PARSE_OPTIONS)
+        table = pj.read_json(pa.BufferReader(blob), read_options=pj.ReadOptions(use_threads=threads),
+                             parse_options=_PARSE_OPTIONS)
     except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
         return None
     return table if table.num_rows == rows else None
