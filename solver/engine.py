@@ -170,7 +170,8 @@ class Engine:
         self.R = np.zeros((1, cap))
         self.S = np.zeros((1, cap))
         self._active = np.zeros((1, cap), dtype=np.int32)
-        self._in_active = np.zeros((1, cap), dtype=np.bool_)
+        # per node and profile: kernels.ACTIVE (on the active list), kernels.QUEUED (in the push queue)
+        self._flags = np.zeros((1, cap), dtype=np.uint8)
         self._n_active = np.zeros(1, dtype=np.int64)
         self._parked = np.zeros(1)  # residual mass of nodes parked off the active lists
         self._parked_max = np.zeros(1)  # largest |r| parked since the last full listing
@@ -182,7 +183,6 @@ class Engine:
         self.set_targets(rtol, tolerance, certified_top)
         self._seed_error = np.zeros(1)  # rounding bound of seed updates to the residual, per profile
         self._queue = np.zeros(cap, dtype=np.int32)
-        self._in_queue = np.zeros(cap, dtype=np.bool_)
         self._tmp = np.zeros(cap)
         self._spill = np.zeros((kernels.SWEEP_CHUNKS - 1, cap))  # partial sums of parallel sweeps
 
@@ -226,7 +226,7 @@ class Engine:
         self.R = np.vstack([self.R, np.zeros(cap)])
         self.S = np.vstack([self.S, np.zeros(cap)])
         self._active = np.vstack([self._active, np.zeros(cap, dtype=np.int32)])
-        self._in_active = np.vstack([self._in_active, np.zeros(cap, dtype=np.bool_)])
+        self._flags = np.vstack([self._flags, np.zeros(cap, dtype=np.uint8)])
         self._n_active = np.append(self._n_active, 0)
         self._parked = np.append(self._parked, 0.0)
         self._parked_max = np.append(self._parked_max, 0.0)
@@ -248,10 +248,10 @@ class Engine:
             self.S[0, old:n_nodes] = 1.0
             self.R[0, old:n_nodes] += 1.0
             new = np.arange(old, n_nodes, dtype=np.int32)
-            fresh = new[~self._in_active[0, old:n_nodes]]
+            fresh = new[(self._flags[0, old:n_nodes] & kernels.ACTIVE) == 0]
             start = int(self._n_active[0])
             self._active[0, start : start + fresh.size] = fresh
-            self._in_active[0, fresh] = True
+            self._flags[0, fresh] |= kernels.ACTIVE
             self._n_active[0] += fresh.size
 
     def _grow_node_arrays(self, cap: int) -> None:
@@ -261,9 +261,8 @@ class Engine:
             return out
 
         self.P, self.R, self.S = grow(self.P), grow(self.R), grow(self.S)
-        self._active, self._in_active = grow(self._active), grow(self._in_active)
+        self._active, self._flags = grow(self._active), grow(self._flags)
         self._queue = np.zeros(cap, dtype=np.int32)
-        self._in_queue = np.zeros(cap, dtype=np.bool_)
         self._tmp = np.zeros(cap)
         self._spill = np.zeros((kernels.SWEEP_CHUNKS - 1, cap))
 
@@ -311,7 +310,7 @@ class Engine:
                 g.start, g.cap, g.out_weight, g.out_degree, g.src, g.dst, g.weight, g.free_blocks,
                 g.table, g.counters,
                 self.P, self.R, self.S, self.teleport, self.damping,
-                self._active, self._n_active, self._in_active, self._parked, self._seed_error,
+                self._active, self._n_active, self._flags, self._parked, self._seed_error,
                 kernels.LOCAL_REPAIR_MAX_DEGREE, self._psum, done,
             )
             noop += int(more)
@@ -505,15 +504,16 @@ class Engine:
         stats = np.zeros(5, dtype=np.int64)
         if self._parked_max[k] > weights.beta:
             # thresholds fell below residuals parked earlier: list every node again
-            kernels.relist_active(k, self.R, n, self._active, self._n_active, self._in_active, self._parked)
+            kernels.relist_active(k, self.R, n, self._active, self._n_active, self._flags, self._parked)
             self._parked_max[k] = 0.0
         edge_limit = max(PUSH_EDGE_SHARE * self.n_edges, PUSH_EDGE_FLOOR)
+        unit = self.graph.unit_weights
         for _ in range(1_000):
             handover = kernels.push_to_thresholds(
                 k, n, self.n_edges, g.start, g.out_weight, g.out_degree, g.dst, g.weight,
                 self.P, self.R, self.S, weights.alpha, weights.beta, self.teleport, self.damping,
-                self._active, self._n_active, self._in_active, self._parked,
-                self._queue, self._in_queue, edge_limit, stats, self._psum,
+                self._active, self._n_active, self._flags, self._parked,
+                self._queue, edge_limit, stats, self._psum, unit,
             )
             if not handover or not self._sweep_to_thresholds(k, weights, edge_limit, stats):
                 break
@@ -541,7 +541,7 @@ class Engine:
             best = min(best, worst)
             if stalled >= 50:
                 break  # rounding floor: the certificate reports what was reached
-        kernels.relist_active(k, self.R, n, self._active, self._n_active, self._in_active, self._parked)
+        kernels.relist_active(k, self.R, n, self._active, self._n_active, self._flags, self._parked)
         self._parked_max[k] = 0.0
         return worst > 1.0 and stalled < 50
 
@@ -578,8 +578,8 @@ class Engine:
             k, tol, self.n_nodes, self.n_edges,
             g.start, g.out_weight, g.out_degree, g.dst, g.weight,
             self.P, self.R, self.teleport, self.damping,
-            self._active, self._n_active, self._in_active, self._parked,
-            self._queue, self._in_queue, SWEEP_SHARE, THETA_STEP, PUSH_LIMIT, stats,
+            self._active, self._n_active, self._flags, self._parked,
+            self._queue, SWEEP_SHARE, THETA_STEP, PUSH_LIMIT, stats,
         )
         if sweep:
             s_p = self._sweep_until_done(k, tol, rho, s_p, abs_p, stats)
@@ -605,7 +605,7 @@ class Engine:
             stalled = stalled + 1 if rho >= before else 0
             if stalled >= 50:
                 break  # rounding floor reached: the bound reported is what it is
-        kernels.relist_active(k, self.R, n, self._active, self._n_active, self._in_active, self._parked)
+        kernels.relist_active(k, self.R, n, self._active, self._n_active, self._flags, self._parked)
         self._parked_max[k] = 0.0
         return s_p
 
@@ -639,7 +639,7 @@ class Engine:
             each = kernels.park_threshold(k, self.R, self._active, self._n_active, budget - self._parked[k])
         if self.rtol is not None:
             each = min(each, self._weights[k].beta)
-        largest = kernels.compact_active(k, self.R, self._active, self._n_active, self._in_active, self._parked,
+        largest = kernels.compact_active(k, self.R, self._active, self._n_active, self._flags, self._parked,
                                          budget, each)
         self._parked_max[k] = max(self._parked_max[k], largest)
 
@@ -729,10 +729,10 @@ class Engine:
         n = self.n_nodes
         self._parked[k] = 0.0
         self._parked_max[k] = 0.0
-        self._in_active[k, :] = False
+        self._flags[k, :] = 0
         nz = np.flatnonzero(self.R[k, :n]).astype(np.int32)
         self._active[k, : nz.size] = nz
-        self._in_active[k, nz] = True
+        self._flags[k, nz] = kernels.ACTIVE
         self._n_active[k] = nz.size
 
     def exact_scores(self, profile: str = GLOBAL, tol: float = 1e-12, warm: bool = False) -> np.ndarray:
@@ -786,8 +786,8 @@ class Engine:
 
     def memory_bytes(self) -> dict[str, int]:
         """Bytes held: graph arrays, per-edge arrays alone, profile arrays."""
-        prof = sum(x.nbytes for x in (self.P, self.R, self.S, self._active, self._in_active))
-        prof += self._queue.nbytes + self._in_queue.nbytes + self._tmp.nbytes
+        prof = sum(x.nbytes for x in (self.P, self.R, self.S, self._active, self._flags))
+        prof += self._queue.nbytes + self._tmp.nbytes
         return {
             "graph": self.graph.memory_bytes(),
             "edges": self.graph.edge_memory_bytes(),

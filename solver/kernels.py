@@ -32,6 +32,7 @@ import numpy as np
 from numba import njit, prange
 
 from .graph import hash_home
+from .prefetch import prefetch
 
 OP_INSERT = 0
 OP_DELETE = 1
@@ -49,6 +50,15 @@ LOCAL_REPAIR_MAX_DEGREE = 64
 # Helpers called per edge or per event are inlined (``inline="always"``): a call
 # between compiled functions passes each array with reference counting, which
 # made the push loop three times slower than its memory traffic.
+
+#: Bits of a node's per-profile flags (``Engine._flags``): on the profile's
+#: active list, and waiting in the push queue. One byte per node holds both, so
+#: a pushed edge reads one byte of state besides the residual.
+ACTIVE = np.uint8(1)
+QUEUED = np.uint8(2)
+#: How many queued nodes ahead a push prefetches the node records, and (half as
+#: far) the out-edge block.
+PREFETCH_AHEAD = 4
 
 #: Fixed number of node chunks a global sweep is split into (see :func:`scatter_nodes`).
 SWEEP_CHUNKS = 2
@@ -171,15 +181,16 @@ def _grow_block(u, start, cap, out_degree, e_src, e_dst, e_w, free_blocks, table
 
 
 @njit(cache=True, inline="always")
-def _mark(k, v, R, active, n_active, in_active, parked):
+def _mark(k, v, R, active, n_active, flags, parked):
     """Put ``v`` on profile ``k``'s active list; call it *before* changing ``R[k, v]``.
 
     A node taken off the list with a small residual is *parked*: its residual
-    stays counted in ``parked[k]`` until it comes back here.
+    stays counted in ``parked[k]`` until it comes back here. ``flags`` holds
+    the :data:`ACTIVE` bit.
     """
-    if not in_active[k, v]:
+    if not (flags[k, v] & ACTIVE):
         parked[k] -= abs(R[k, v])  # no inner branch: it keeps the push loop fast
-        in_active[k, v] = True
+        flags[k, v] |= ACTIVE
         active[k, n_active[k]] = v
         n_active[k] += 1
 
@@ -514,22 +525,24 @@ def is_done(rho, s_p, abs_p, tol):
 
 
 @njit(cache=True, nogil=True)
-def relist_active(k, R, n, active, n_active, in_active, parked):
+def relist_active(k, R, n, active, n_active, flags, parked):
     """After sweeps every node may carry residual: list all that do, park none."""
     n_active[k] = 0
     parked[k] = 0.0
     for u in range(n):
-        in_active[k, u] = R[k, u] != 0.0
-        if in_active[k, u]:
+        if R[k, u] != 0.0:
+            flags[k, u] = ACTIVE
             active[k, n_active[k]] = u
             n_active[k] += 1
+        else:
+            flags[k, u] = 0
 
 
 @njit(cache=True, nogil=True)
 def settle_profile(
     k, tol, n, m,
     start, out_weight, out_degree, e_dst, e_w,
-    P, R, a, d, active, n_active, in_active, parked, queue, in_queue, sweep_share, theta_step,
+    P, R, a, d, active, n_active, flags, parked, queue, sweep_share, theta_step,
     push_limit, stats,
 ):
     """Push profile ``k`` until its certified bound is at most ``tol``, or hand over to sweeps.
@@ -584,8 +597,8 @@ def settle_profile(
         frontier = 0
         for i in range(n_active[k]):
             u = active[k, i]
-            if abs(R[k, u]) > theta * max(out_degree[u], 1) and not in_queue[u]:
-                in_queue[u] = True
+            if abs(R[k, u]) > theta * max(out_degree[u], 1) and not (flags[k, u] & QUEUED):
+                flags[k, u] |= QUEUED
                 queue[qt] = u
                 qt += 1
                 frontier += out_degree[u]
@@ -594,7 +607,7 @@ def settle_profile(
             qt = 0  # every node is due: the ring buffer is full and its tail wraps
         if frontier > sweep_share * m:
             for j in range(pending):
-                in_queue[queue[j]] = False
+                flags[k, queue[j]] &= ~QUEUED
             sweeping = True
             continue
         while pending > 0 and not _done(rho, s_p, abs_p, tol):
@@ -603,7 +616,7 @@ def settle_profile(
             if qh == cap:
                 qh = 0
             pending -= 1
-            in_queue[u] = False
+            flags[k, u] &= ~QUEUED
             ru = R[k, u]
             limit = theta * max(out_degree[u], 1)
             if abs(ru) <= limit:
@@ -621,13 +634,13 @@ def settle_profile(
             scale = d * ru / W
             for e in range(start[u], start[u] + out_degree[u]):
                 v = e_dst[e]
-                _mark(k, v, R, active, n_active, in_active, parked)
+                _mark(k, v, R, active, n_active, flags, parked)
                 before = R[k, v]
                 after = before + scale * e_w[e]
                 R[k, v] = after
                 rho += abs(after) - abs(before)
-                if not in_queue[v] and abs(after) > theta * max(out_degree[v], 1):
-                    in_queue[v] = True
+                if not (flags[k, v] & QUEUED) and abs(after) > theta * max(out_degree[v], 1):
+                    flags[k, v] |= QUEUED
                     queue[qt] = v
                     qt += 1
                     if qt == cap:
@@ -635,7 +648,7 @@ def settle_profile(
                     pending += 1
                 stats[1] += 1
         while pending > 0:
-            in_queue[queue[qh]] = False
+            flags[k, queue[qh]] &= ~QUEUED
             qh += 1
             if qh == cap:
                 qh = 0
@@ -684,7 +697,7 @@ def park_threshold(k, R, active, n_active, budget):
 
 
 @njit(cache=True, nogil=True)
-def compact_active(k, R, active, n_active, in_active, parked, park_budget, park_each):
+def compact_active(k, R, active, n_active, flags, parked, park_budget, park_each):
     """Shorten profile ``k``'s active list.
 
     Nodes with a zero residual leave it; nodes with ``|r| <= park_each`` are
@@ -699,9 +712,9 @@ def compact_active(k, R, active, n_active, in_active, parked, park_budget, park_
         u = active[k, i]
         r = abs(R[k, u])
         if r == 0.0:
-            in_active[k, u] = False
+            flags[k, u] &= ~ACTIVE
         elif r <= park_each and parked[k] + r <= park_budget:
-            in_active[k, u] = False
+            flags[k, u] &= ~ACTIVE
             parked[k] += r
             largest = max(largest, r)
         else:
@@ -719,11 +732,43 @@ def _threshold(S, k, u, alpha, beta):
     return alpha * S[k, u] + beta
 
 
+@njit(cache=True, inline="always")
+def _queue_due(k, R, S, alpha, beta, flags, active, n_active, queue):
+    """Queue every active node above its threshold; return how many."""
+    qt = 0
+    for i in range(n_active[k]):
+        u = active[k, i]
+        if abs(R[k, u]) > _threshold(S, k, u, alpha, beta) and not (flags[k, u] & QUEUED):
+            flags[k, u] |= QUEUED
+            queue[qt] = u
+            qt += 1
+    return qt
+
+
+@njit(cache=True, inline="always")
+def _prefetch_ahead(queue, qh, pending, start, out_weight, out_degree, e_dst, e_w, Rk, unit):
+    """Prefetch the record of the node ``PREFETCH_AHEAD`` places ahead, and the block of the one half as far."""
+    cap = queue.shape[0]
+    if pending > PREFETCH_AHEAD:
+        j = qh + PREFETCH_AHEAD
+        w = queue[j - cap if j >= cap else j]
+        prefetch(start, w)
+        prefetch(out_degree, w)
+        prefetch(out_weight, w)
+        prefetch(Rk, w)
+    if pending > PREFETCH_AHEAD // 2:
+        j = qh + PREFETCH_AHEAD // 2
+        b = start[queue[j - cap if j >= cap else j]]
+        prefetch(e_dst, b)
+        if not unit:
+            prefetch(e_w, b)
+
+
 @njit(cache=True, nogil=True)
 def push_to_thresholds(
     k, n, m,
     start, out_weight, out_degree, e_dst, e_w,
-    P, R, S, alpha, beta, a, d, active, n_active, in_active, parked, queue, in_queue, edge_limit, stats, psum,
+    P, R, S, alpha, beta, a, d, active, n_active, flags, parked, queue, edge_limit, stats, psum, unit,
 ):
     """Forward push, first in first out, until every active ``|r(u)| <= alpha s(u) + beta``.
 
@@ -739,38 +784,45 @@ def push_to_thresholds(
     the start carry more than that many out-edges, the kernel stops and
     returns 1, and the caller continues with global sweeps.
 
+    A pushed edge costs a read of the residual and of one flag byte (the
+    node's :data:`ACTIVE` and :data:`QUEUED` bits together); with ``alpha = 0``
+    the threshold is the constant ``beta``, and with ``unit`` (every weight 1)
+    the weights are not read. The next queued nodes' records and blocks are
+    prefetched (:func:`_prefetch_ahead`).
+
     Returns 0 when every active node meets its threshold, 1 to hand over to
     sweeps. ``stats`` accumulates [0] pushes and [1] edges touched.
     """
     cap = queue.shape[0]
-    qt = 0
+    uniform = alpha == 0.0
+    Rk = R[k]
+    fk = flags[k]
+    qt = _queue_due(k, R, S, alpha, beta, flags, active, n_active, queue)
     frontier = 0
-    for i in range(n_active[k]):
-        u = active[k, i]
-        if abs(R[k, u]) > _threshold(S, k, u, alpha, beta) and not in_queue[u]:
-            in_queue[u] = True
-            queue[qt] = u
-            qt += 1
-            frontier += out_degree[u]
+    for i in range(qt):
+        frontier += out_degree[queue[i]]
     pending = qt
     if qt == cap:
         qt = 0
     qh = 0
     touched = 0
+    listed = n_active[k]
+    unparked = 0.0
     handover = frontier > edge_limit
     while pending > 0 and not handover:
+        _prefetch_ahead(queue, qh, pending, start, out_weight, out_degree, e_dst, e_w, Rk, unit)
         u = queue[qh]
         qh += 1
         if qh == cap:
             qh = 0
         pending -= 1
-        in_queue[u] = False
-        ru = R[k, u]
-        if abs(ru) <= _threshold(S, k, u, alpha, beta):
+        fk[u] &= ~QUEUED
+        ru = Rk[u]
+        if abs(ru) <= (beta if uniform else _threshold(S, k, u, alpha, beta)):
             continue
         P[k, u] += a * ru
         psum[k] += a * ru
-        R[k, u] = 0.0
+        Rk[u] = 0.0
         stats[0] += 1
         W = out_weight[u]
         if W <= 0.0:
@@ -778,22 +830,32 @@ def push_to_thresholds(
         scale = d * ru / W
         for e in range(start[u], start[u] + out_degree[u]):
             v = e_dst[e]
-            _mark(k, v, R, active, n_active, in_active, parked)
-            after = R[k, v] + scale * e_w[e]
-            R[k, v] = after
-            if not in_queue[v] and abs(after) > _threshold(S, k, v, alpha, beta):
-                in_queue[v] = True
+            f = fk[v]
+            r = Rk[v]
+            if not (f & ACTIVE):
+                # what _mark does, with the list length and parked mass kept in locals
+                unparked += abs(r)
+                active[k, listed] = v
+                listed += 1
+                f |= ACTIVE
+            after = r + (scale if unit else scale * e_w[e])
+            Rk[v] = after
+            if not (f & QUEUED) and abs(after) > (beta if uniform else _threshold(S, k, v, alpha, beta)):
+                f |= QUEUED
                 queue[qt] = v
                 qt += 1
                 if qt == cap:
                     qt = 0
                 pending += 1
+            fk[v] = f
         touched += out_degree[u]
         if touched > edge_limit:
             handover = True
+    n_active[k] = listed
+    parked[k] -= unparked
     stats[1] += touched
     while pending > 0:
-        in_queue[queue[qh]] = False
+        fk[queue[qh]] &= ~QUEUED
         qh += 1
         if qh == cap:
             qh = 0
