@@ -19,7 +19,6 @@ streams marked by the ``content-type`` header :data:`ARROW_CONTENT_TYPE`.
 
 from __future__ import annotations
 
-import io
 import json
 import math
 from dataclasses import dataclass, field
