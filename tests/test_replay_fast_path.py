@@ -11,6 +11,9 @@ its errors and stop when the replay stops early.
 from __future__ import annotations
 
 import json
+import os
+import subprocess
+import sys
 import threading
 from pathlib import Path
 
@@ -164,3 +167,24 @@ def test_until_stops_a_many_chunk_replay_at_its_line(tmp_path: Path) -> None:
     manifest = json.loads((summary.snapshot / "manifest.json").read_text())
     assert manifest["positions"]["files"][str(path.resolve())]["line"] == 1_234
     assert not _readers()
+
+
+def test_the_replay_command_writes_every_output_before_it_ends(tmp_path: Path) -> None:
+    """The command line ends a replay without the interpreter's teardown: nothing may be lost by it."""
+    lines = _log(np.random.default_rng(11), 500, bad_every=101)
+    path = tmp_path / "events.jsonl"
+    path.write_bytes(b"\n".join(lines))
+    want_events, want_bad = _reference(lines)
+    env = {k: v for k, v in os.environ.items() if k != "PYTHONUNBUFFERED"}  # output to pipes is block-buffered
+    done = subprocess.run([sys.executable, "-m", "ranktide.stream.cli", "--log-level", "DEBUG", "replay", str(path),
+                           "--out", str(tmp_path / "root")], capture_output=True, text=True, timeout=300, env=env)
+    assert done.returncode == 0, done.stderr[-3000:]
+    assert f"events applied {len(want_events):,}" in done.stdout
+    assert f"events rejected {len(want_bad):,} (see" in done.stdout
+    assert done.stdout.rstrip().splitlines()[-1].startswith("time")  # the summary's last line
+    assert "replay timing: read+parse" in done.stderr  # the log handler was flushed too
+    rejects = (tmp_path / "root" / "rejects.jsonl").read_text().splitlines()
+    assert [json.loads(r)["line"] for r in rejects] == want_bad
+    missing = subprocess.run([sys.executable, "-m", "ranktide.stream.cli", "replay", str(tmp_path / "nope.jsonl"),
+                              "--out", str(tmp_path / "other")], capture_output=True, text=True, timeout=300)
+    assert missing.returncode == 2 and "no such log file" in missing.stderr
