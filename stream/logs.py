@@ -189,19 +189,21 @@ def _read_jsonl(
                 else:
                     carry = data
                     continue
-            body, carry = data[:cut], data[cut:]
-            lines_in_body = body.count(b"\n") + (0 if body.endswith(b"\n") else 1)
-            yield _jsonl_chunk(body, offset, line_no, line_no - 1 + lines_in_body, limits)
-            line_no += lines_in_body
+            body, carry = (data, b"") if cut == len(data) else (data[:cut], data[cut:])
+            chunk = _jsonl_chunk(body, offset, line_no, limits)
+            yield chunk
+            line_no = chunk.end_line + 1
             offset += len(body)
             if at_end:
                 return
 
 
-def _jsonl_chunk(body: bytes, offset: int, line_no: int, end_line: int, limits: Limits) -> LogChunk:
+def _jsonl_chunk(body: bytes, offset: int, line_no: int, limits: Limits) -> LogChunk:
+    """The lines of ``body`` (the first is line ``line_no``, at byte ``offset``) parsed and placed."""
     size = len(body) - 1 if body.endswith(b"\n") else len(body)  # without the last newline
     starts = np.concatenate(([0], np.flatnonzero(np.frombuffer(body, np.uint8, count=size) == 10) + 1))
-    lengths = np.diff(np.append(starts, size + 1)) - 1
+    lengths = np.diff(np.append(starts, size + 1)) - 1  # one per line, a blank one included
+    end_line = line_no - 1 + lengths.size
     # the whole chunk through Arrow's JSON reader at once; line by line only when it needs care
     parsed = parse_json_block(body if size < len(body) else body + b"\n", lengths, limits)
     if parsed is not None:
