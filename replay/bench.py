@@ -113,8 +113,7 @@ def run_all(args: argparse.Namespace, folder: Path) -> dict:
     report["throughput"] = measure_throughput(tr, micro, THROUGHPUT_BATCHES[args.size])
     _say("snapshot write and load")
     report["snapshot"], snap_path = measure_snapshot(tr.engine, folder / "snapshots")
-    snap_edges = EdgeSet(np.zeros(0, np.int32), np.zeros(0, np.int32), tr.loaded.edges.n)
-    snap_edges.keys = tr.loaded.edges.keys.copy()
+    snap_edges = tr.loaded.edges.copy()
     _say("engine throughput on the service's backlog schedule")
     report["backlog"] = measure_backlog(_copy_tracker(tr, args.seed + 11), micro, BACKLOG_BATCHES[args.size],
                                         ServiceConfig().settle_interval)

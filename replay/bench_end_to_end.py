@@ -83,8 +83,7 @@ def measure_replay(src: np.ndarray, dst: np.ndarray, folder: Path) -> dict:
 
 def e2e_events(edges: EdgeSet, sampler: PowerLawSampler, count: int, rng: np.random.Generator) -> Batch:
     """``count`` mixed events against the snapshot's edge set (a copy; the set is not changed)."""
-    copy = EdgeSet(np.zeros(0, np.int32), np.zeros(0, np.int32), edges.n)
-    copy.keys = edges.keys.copy()
+    copy = edges.copy()
     return mixed_batch(count, copy, sampler, rng)
 
 

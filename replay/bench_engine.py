@@ -160,8 +160,7 @@ def start_tracker(loaded: Loaded, seed: int) -> Tracker:
 
 def _copy_tracker(tr: Tracker, seed: int) -> Tracker:
     """An independent copy of the engine and its edge set (for a run that must not change ``tr``)."""
-    edges = EdgeSet(np.zeros(0, np.int32), np.zeros(0, np.int32), tr.loaded.edges.n)
-    edges.keys = tr.loaded.edges.keys.copy()
+    edges = tr.loaded.edges.copy()
     loaded = Loaded(copy.deepcopy(tr.engine), edges, tr.loaded.sampler, {})
     return Tracker(loaded, {}, np.random.default_rng(seed))
 

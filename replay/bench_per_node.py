@@ -83,8 +83,7 @@ class PerNodeRun:
         self.engine = copy.deepcopy(loaded.engine)
         self.engine.set_targets(rtol=RTOL, tolerance=None)
         self.engine.settle()
-        self.edges = EdgeSet(np.zeros(0, np.int32), np.zeros(0, np.int32), loaded.edges.n)
-        self.edges.keys = loaded.edges.keys.copy()
+        self.edges = loaded.edges.copy()
         self.sampler = loaded.sampler
         self.rng = np.random.default_rng(seed)
         self.x_exact, _, _ = _exact(self.engine, {})

@@ -22,8 +22,21 @@ from ranktide.solver import OP_DELETE, OP_INSERT, OP_SEED, Engine
 # ====================================================================== the edge set
 
 
+def _member(sorted_keys: np.ndarray, keys: np.ndarray) -> np.ndarray:
+    """Membership of each of ``keys`` in the sorted array ``sorted_keys`` (vectorised binary search)."""
+    if sorted_keys.size == 0:
+        return np.zeros(keys.shape, dtype=bool)
+    pos = np.minimum(np.searchsorted(sorted_keys, keys), sorted_keys.size - 1)
+    return sorted_keys[pos] == keys
+
+
 class EdgeSet:
-    """Sorted keys of the engine's present edges, kept in step outside the timed regions.
+    """Keys of the engine's present edges, kept in step outside the timed regions.
+
+    A sorted base array plus two small sorted arrays of keys added and removed
+    since the last merge: an update costs a few binary searches, not a copy
+    of the base (16 MB at medium size), which would evict the engine's arrays
+    from the caches between timed steps.
 
     Parameters
     ----------
@@ -33,23 +46,70 @@ class EdgeSet:
         Number of nodes (keys are ``src * n + dst``).
     """
 
+    #: Pending changes merged into the base beyond this many.
+    MERGE_AT = 1 << 16
+
     def __init__(self, src: np.ndarray, dst: np.ndarray, n: int) -> None:
         self.n = int(n)
-        self.keys = np.sort(pair_keys(src, dst, n))
+        self._base = np.sort(pair_keys(src, dst, n))
+        self._added = np.zeros(0, dtype=np.int64)  # sorted, none in the base
+        self._removed = np.zeros(0, dtype=np.int64)  # sorted, all in the base
+
+    def __len__(self) -> int:
+        return int(self._base.size - self._removed.size + self._added.size)
+
+    @property
+    def keys(self) -> np.ndarray:
+        """Every present key, sorted (merges the pending changes)."""
+        self._merge()
+        return self._base
+
+    def copy(self) -> "EdgeSet":
+        """An independent copy."""
+        out = EdgeSet(np.zeros(0, np.int32), np.zeros(0, np.int32), self.n)
+        out._base, out._added, out._removed = self._base.copy(), self._added.copy(), self._removed.copy()
+        return out
 
     def contains(self, keys: np.ndarray) -> np.ndarray:
-        """Membership of each key (vectorised binary search)."""
-        pos = np.searchsorted(self.keys, keys)
-        pos = np.minimum(pos, max(self.keys.size - 1, 0))
-        return (self.keys.size > 0) & (self.keys[pos] == keys)
+        """Membership of each key."""
+        return (_member(self._base, keys) & ~_member(self._removed, keys)) | _member(self._added, keys)
 
     def update(self, inserted: np.ndarray, deleted: np.ndarray) -> None:
         """Add ``inserted`` (absent) keys and drop ``deleted`` (present) ones."""
         if deleted.size:
-            self.keys = np.delete(self.keys, np.searchsorted(self.keys, deleted))
+            pending = _member(self._added, deleted)
+            self._added = np.setdiff1d(self._added, deleted[pending], assume_unique=True)
+            self._removed = np.union1d(self._removed, deleted[~pending])
         if inserted.size:
-            ins = np.sort(inserted)
-            self.keys = np.insert(self.keys, np.searchsorted(self.keys, ins), ins)
+            back = _member(self._removed, inserted)
+            self._removed = np.setdiff1d(self._removed, inserted[back], assume_unique=True)
+            self._added = np.union1d(self._added, inserted[~back])
+        if self._added.size + self._removed.size > self.MERGE_AT:
+            self._merge()
+
+    def sample(self, count: int, rng: np.random.Generator) -> np.ndarray:
+        """``count`` distinct present keys drawn uniformly, in random order."""
+        count = min(count, len(self))
+        if count == 0:
+            return np.zeros(0, dtype=np.int64)
+        base, added = self._base, self._added
+        found = np.zeros(0, dtype=np.int64)
+        while found.size < count:
+            idx = rng.integers(0, base.size + added.size, size=2 * (count - found.size) + 8)
+            from_base = idx < base.size
+            picked = np.empty(idx.size, dtype=np.int64)
+            picked[from_base] = base[idx[from_base]]
+            picked[~from_base] = added[idx[~from_base] - base.size]
+            found = np.unique(np.concatenate([found, picked[~_member(self._removed, picked)]]))
+        return rng.permutation(found)[:count]
+
+    def _merge(self) -> None:
+        if self._added.size == 0 and self._removed.size == 0:
+            return
+        base = np.delete(self._base, np.searchsorted(self._base, self._removed))
+        self._base = np.insert(base, np.searchsorted(base, self._added), self._added)
+        self._added = np.zeros(0, dtype=np.int64)
+        self._removed = np.zeros(0, dtype=np.int64)
 
 
 # ====================================================================== event batches
@@ -90,9 +150,9 @@ def mixed_batch(size: int, edges: EdgeSet, sampler: PowerLawSampler, rng: np.ran
     ``Engine.graph.edge_list()``).
     """
     n_ins = int(round(INSERT_SHARE * size))
-    n_del = min(size - n_ins, edges.keys.size)
     ins = new_edges(n_ins, edges, sampler, rng)
-    dele = edges.keys[rng.choice(edges.keys.size, size=n_del, replace=False)] if n_del else np.zeros(0, np.int64)
+    dele = edges.sample(size - n_ins, rng)
+    n_del = dele.size
     keys = np.concatenate([ins, dele])
     op = np.concatenate([np.full(n_ins, OP_INSERT, np.int8), np.full(n_del, OP_DELETE, np.int8)])
     order = rng.permutation(keys.size)

@@ -25,7 +25,6 @@ References
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -78,6 +77,8 @@ PUSH_EDGE_FLOOR = 50_000
 #: Safety factor on the per-node thresholds: the running residual carries rounding
 #: (about 1e-12 relative), far below this margin.
 THRESHOLD_MARGIN = 0.99
+#: How a run of global sweeps under the per-node contract ended (``Engine._sweep_to_thresholds``).
+SWEEPS_PUSH_ON, SWEEPS_DONE, SWEEPS_STALLED = 0, 1, 2
 
 #: A personalization's error budget ``rtol / (1 + rtol)`` is split in four: the part
 #: relative to its own scores, the absolute part at hubs, the shift of its sum, slack.
@@ -395,32 +396,28 @@ class Engine:
         ``||r||_1``, so a threshold chosen from ``delta`` after pushing stays
         valid; thresholds come from a ladder of quarter octaves below the
         largest one, so that small changes of ``delta`` do not unpark nodes.
+        The ladder runs inside one kernel (:func:`solver.kernels.push_global`):
+        a settle after a few events is one call.
         """
-        stats = SettleStats()
-        weights = Weights(0.0, self._global_limit(0.0))  # the top rung: delta is usually tiny
-        self._weights[0] = weights
-        for _ in range(64):
-            stats.add(self._push_and_sweep(0, weights))
-            limit = self._global_limit(self._sum_shift(0))
-            if weights.beta <= limit:
+        g = self.graph.arrays
+        stats = np.zeros(5, dtype=np.int64)
+        edge_limit = max(PUSH_EDGE_SHARE * self.n_edges, PUSH_EDGE_FLOOR)
+        beta = self._global_limit(0.0)  # the top rung: delta is usually tiny
+        for _ in range(1_000):
+            handover, beta = kernels.push_global(
+                self.n_nodes, self.n_edges, g.start, g.out_weight, g.out_degree, g.dst, g.weight,
+                self.P, self.R, self.S, self.teleport, self.damping,
+                self._active, self._n_active, self._flags, self._parked, self._parked_max, self._queue,
+                edge_limit, stats, self._psum, self.graph.unit_weights, self.rtol, THRESHOLD_MARGIN, beta,
+            )
+            if not handover or self._sweep_to_thresholds(0, Weights(0.0, beta), edge_limit, stats) == SWEEPS_STALLED:
                 break
-            weights = Weights(0.0, self._ladder(limit, weights.beta))
-            self._weights[0] = weights
-        return stats
+        self._weights[0] = Weights(0.0, beta)
+        return SettleStats(*(int(x) for x in stats))
 
     def _global_limit(self, delta: float) -> float:
         """Largest ``max |r_g|`` certifying ``rtol`` given the sum shift ``delta`` (0 if none does)."""
-        target = self.rtol / (1.0 + self.rtol)
-        q = target * (1.0 - delta) - delta
-        return THRESHOLD_MARGIN * q / (1.0 + q) if q > 0.0 else 0.0
-
-    def _ladder(self, limit: float, current: float) -> float:
-        """The largest rung ``top * 2**(-j/4)`` at most ``limit``, and below ``current``."""
-        top = self._global_limit(0.0)
-        if limit <= 0.0:
-            return current / 2.0
-        rungs = max(math.ceil(4.0 * math.log2(top / limit) - 1e-9), 0)
-        return min(top * 2.0 ** (-rungs / 4.0), current / 2.0 ** 0.25)
+        return kernels.global_limit(delta, self.rtol, THRESHOLD_MARGIN)
 
     def _personal_weights(self, k: int, previous: Weights | None, fresh: bool) -> Weights:
         """Thresholds ``alpha s + beta`` under which personalization ``k`` meets ``rtol``.
@@ -515,12 +512,16 @@ class Engine:
                 self._active, self._n_active, self._flags, self._parked,
                 self._queue, edge_limit, stats, self._psum, unit,
             )
-            if not handover or not self._sweep_to_thresholds(k, weights, edge_limit, stats):
+            if not handover or self._sweep_to_thresholds(k, weights, edge_limit, stats) != SWEEPS_PUSH_ON:
                 break
         return SettleStats(*(int(x) for x in stats))
 
-    def _sweep_to_thresholds(self, k: int, weights: Weights, edge_limit: float, stats: np.ndarray) -> bool:
-        """Global sweeps until pushes can finish; returns True when pushes should go on.
+    def _sweep_to_thresholds(self, k: int, weights: Weights, edge_limit: float, stats: np.ndarray) -> int:
+        """Global sweeps until pushes can finish.
+
+        Returns :data:`SWEEPS_PUSH_ON` (pushes should finish the work),
+        :data:`SWEEPS_DONE` (every node is within its threshold) or
+        :data:`SWEEPS_STALLED` (rounding stops progress).
 
         Sweeps shrink the residual everywhere but slowly at hubs, where it
         keeps flowing in; so they stop once the nodes still above their
@@ -543,7 +544,9 @@ class Engine:
                 break  # rounding floor: the certificate reports what was reached
         kernels.relist_active(k, self.R, n, self._active, self._n_active, self._flags, self._parked)
         self._parked_max[k] = 0.0
-        return worst > 1.0 and stalled < 50
+        if stalled >= 50:
+            return SWEEPS_STALLED
+        return SWEEPS_PUSH_ON if worst > 1.0 else SWEEPS_DONE
 
     def certificate(self, profile: str = GLOBAL) -> Certificate:
         """Certified per-node bounds of ``profile``'s published scores, and the contract they meet.

@@ -863,6 +863,72 @@ def push_to_thresholds(
     return 1 if handover else 0
 
 
+@njit(cache=True, inline="always")
+def _sum_shift(k, R, active, n_active, parked, psum):
+    """``||r_k||_1 / sum p_k`` (``inf`` before any estimate), as ``Engine._sum_shift``."""
+    r1 = active_l1(k, R, active, n_active, parked)
+    if r1 == 0.0:
+        return 0.0
+    return r1 / psum[k] if psum[k] > r1 else np.inf
+
+
+@njit(cache=True, inline="always")
+def global_limit(delta, rtol, margin):
+    """Largest ``max |r_g|`` certifying ``rtol`` given the sum shift ``delta`` (0 if none does).
+
+    The certified relative error ``(rho / (1 - rho) + delta) / (1 - delta)``
+    must stay within ``rtol / (1 + rtol)`` (``solver.bounds``); ``margin`` < 1
+    keeps a sliver for rounding.
+    """
+    q = rtol / (1.0 + rtol) * (1.0 - delta) - delta
+    return margin * q / (1.0 + q) if q > 0.0 else 0.0
+
+
+@njit(cache=True, inline="always")
+def ladder_rung(limit, current, top):
+    """The largest rung ``top * 2**(-j/4)`` at most ``limit``, and below ``current``."""
+    if limit <= 0.0:
+        return current / 2.0
+    rungs = max(math.ceil(4.0 * math.log2(top / limit) - 1e-9), 0)
+    return min(top * 2.0 ** (-rungs / 4.0), current / 2.0 ** 0.25)
+
+
+@njit(cache=True, nogil=True)
+def push_global(
+    n, m, start, out_weight, out_degree, e_dst, e_w,
+    P, R, S, a, d, active, n_active, flags, parked, parked_max, queue, edge_limit, stats, psum, unit,
+    rtol, margin, beta,
+):
+    """Push the global profile (row 0) down the threshold ladder until ``rtol`` is certified.
+
+    Pushes to the constant threshold ``beta`` (:func:`push_to_thresholds`),
+    then checks it against the largest threshold the sum shift now allows
+    (:func:`global_limit`); if ``beta`` is above it, steps down the ladder of
+    quarter octaves (:func:`ladder_rung`) and pushes again. Pushes never raise
+    ``||r||_1``, so a threshold that holds after pushing stays valid. One call
+    does a whole settle of the global profile unless the pushes hand over to
+    sweeps.
+
+    Returns ``(handover, beta)``: with ``handover`` 1 the caller runs global
+    sweeps (from Python, see :func:`scatter_nodes`) and calls again with the
+    returned ``beta``.
+    """
+    top = global_limit(0.0, rtol, margin)
+    for _ in range(64):
+        if parked_max[0] > beta:
+            # the threshold fell below residuals parked earlier: list every node again
+            relist_active(0, R, n, active, n_active, flags, parked)
+            parked_max[0] = 0.0
+        if push_to_thresholds(0, n, m, start, out_weight, out_degree, e_dst, e_w, P, R, S, 0.0, beta, a, d,
+                              active, n_active, flags, parked, queue, edge_limit, stats, psum, unit):
+            return 1, beta
+        limit = global_limit(_sum_shift(0, R, active, n_active, parked, psum), rtol, margin)
+        if beta <= limit:
+            break
+        beta = ladder_rung(limit, beta, top)
+    return 0, beta
+
+
 @njit(cache=True, nogil=True)
 def over_thresholds(k, n, R, S, alpha, beta, out_degree):
     """``(max_u |r(u)| / w(u), out-edges of the nodes above their threshold)`` over all nodes."""
