@@ -64,7 +64,7 @@ def mixed_events(edges: EdgeSet, count: int, sampler: PowerLawSampler,
     n_del = int(round(MIXED_SHARES[1] * count))
     n_rew = count - n_ins - n_del
     inserted = new_edges(n_ins, edges, sampler, rng)
-    present = edges.keys[rng.choice(edges.keys.size, size=n_del + n_rew, replace=False)]
+    present = edges.sample(n_del + n_rew, rng)
     keys = np.concatenate([inserted, present])
     ops = np.array(["insert"] * n_ins + ["delete"] * n_del + ["insert"] * n_rew, dtype=object)
     weights = np.concatenate([np.ones(n_ins + n_del), np.round(rng.uniform(0.5, 4.0, n_rew), 3)])
