@@ -467,8 +467,8 @@ class Engine:
 
     def _kth_holds(self, k: int, value: float) -> bool:
         """At least K significant estimates (all of them, when fewer) reach ``value``."""
-        p = self._significant(k)
-        return bool(np.count_nonzero(p >= value) >= min(self.certified_top, p.size))
+        significant, reached = kernels.count_significant(k, self.P, self.n_nodes, ROUNDING_FLOOR, value)
+        return reached >= min(self.certified_top, significant)
 
     def settle_certified(self) -> dict[str, Certificate]:
         """Settle, then certify every profile; tighten and settle again where a certificate falls short.

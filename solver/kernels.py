@@ -930,6 +930,28 @@ def push_global(
 
 
 @njit(cache=True, nogil=True)
+def count_significant(k, P, n, floor_share, value):
+    """``(estimates above floor_share * max, how many of those reach value)`` for profile ``k``.
+
+    Two passes, no copies: what a personalization's settle asks after every
+    push to check its certified lower bound on the K-th best score.
+    """
+    top = 0.0
+    for u in range(n):
+        if P[k, u] > top:
+            top = P[k, u]
+    floor = floor_share * top
+    significant = 0
+    reached = 0
+    for u in range(n):
+        if P[k, u] > floor:
+            significant += 1
+            if P[k, u] >= value:
+                reached += 1
+    return significant, reached
+
+
+@njit(cache=True, nogil=True)
 def over_thresholds(k, n, R, S, alpha, beta, out_degree):
     """``(max_u |r(u)| / w(u), out-edges of the nodes above their threshold)`` over all nodes."""
     worst = 0.0
