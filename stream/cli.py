@@ -613,25 +613,10 @@ def main(argv: list[str] | None = None) -> int:
     Run as the program (no ``argv``), a finished ``replay`` ends the process
     at once (:func:`_exit_now`).
     """
-    code, command = _main(sys.argv[1:] if argv is None else argv, program=argv is None)
+    code, command = _main(sys.argv[1:] if argv is None else argv)
     if argv is None and command == "replay":
         _exit_now(code)
     return code
-
-
-class _NoPandas:
-    """An import hook under which pandas looks uninstalled.
-
-    pyarrow imports pandas, when it is installed, at its first conversion,
-    only to recognise pandas objects; a replay hands it none, and the import
-    costs 0.2-0.5 s of a replay's start. Installed by ``replay`` run as the
-    program only, never in a process that embeds :func:`main`.
-    """
-
-    def find_spec(self, name: str, path=None, target=None):
-        if name == "pandas" or name.startswith("pandas."):
-            raise ModuleNotFoundError(f"No module named {name!r} (ranktide replay does not use it)", name=name)
-        return None
 
 
 def _exit_now(code: int) -> None:
@@ -651,8 +636,8 @@ def _exit_now(code: int) -> None:
     os._exit(code)
 
 
-def _main(argv: list[str], program: bool = False) -> tuple[int, str]:
-    """The exit code of the command ``argv`` names, and that command (``program``: run as the program)."""
+def _main(argv: list[str]) -> tuple[int, str]:
+    """The exit code of the command ``argv`` names, and that command."""
     if argv[:1] == ["broker"]:
         # everything after 'broker' belongs to the broker's own parser, --help included
         from ranktide.stream import broker
@@ -662,8 +647,6 @@ def _main(argv: list[str], program: bool = False) -> tuple[int, str]:
     args = parser.parse_args(argv)
     logging.basicConfig(level=getattr(logging, args.log_level),
                         format="%(asctime)s %(levelname)s %(name)s: %(message)s")
-    if program and args.command == "replay" and "pandas" not in sys.modules:
-        sys.meta_path.insert(0, _NoPandas())
     try:
         return int(args.func(args) or 0), args.command
     except KeyboardInterrupt:

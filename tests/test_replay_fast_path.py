@@ -188,21 +188,3 @@ def test_the_replay_command_writes_every_output_before_it_ends(tmp_path: Path) -
     missing = subprocess.run([sys.executable, "-m", "ranktide.stream.cli", "replay", str(tmp_path / "nope.jsonl"),
                               "--out", str(tmp_path / "other")], capture_output=True, text=True, timeout=300)
     assert missing.returncode == 2 and "no such log file" in missing.stderr
-
-
-def test_the_replay_program_does_without_pandas_and_an_embedding_keeps_it(tmp_path: Path) -> None:
-    """pyarrow would import pandas (a test extra) at its first conversion; the replay program needs none of it."""
-    pytest.importorskip("pandas")
-    path = tmp_path / "events.jsonl"
-    path.write_bytes(b"\n".join(_log(np.random.default_rng(2), 50, bad_every=7)) + b"\n")
-    done = subprocess.run([sys.executable, "-X", "importtime", "-m", "ranktide.stream.cli", "replay", str(path),
-                           "--out", str(tmp_path / "a"), "--quiet"], capture_output=True, text=True, timeout=300)
-    assert done.returncode == 0, done.stderr[-3000:]
-    assert "| pandas.core" not in done.stderr and "| ranktide.stream.logs" in done.stderr
-    embedded = ("import sys\n"
-                "from ranktide.stream.cli import main\n"
-                f"assert main(['replay', {str(path)!r}, '--out', {str(tmp_path / 'b')!r}, '--quiet']) == 0\n"
-                "import pandas\n"
-                "print(pandas.DataFrame({'x': [1]}).shape)\n")
-    done = subprocess.run([sys.executable, "-c", embedded], capture_output=True, text=True, timeout=300)
-    assert done.returncode == 0 and done.stdout.strip() == "(1, 1)", done.stderr[-3000:]
