@@ -25,14 +25,16 @@ What is measured (every figure comes from the run that prints it):
   oracle-stopped best case, single-event latency and the backlog rate;
 * personalization profiles seeded by seed events, engine throughput at the
   service's micro-batch, snapshot write and load, the replay floor (reading
-  and parsing a log against replaying it), and the service end to end on a
+  and parsing a log against replaying it, and ``ranktide replay`` in a fresh
+  process against the orjson parse floor), and the service end to end on a
   local Kafka broker when :mod:`stream.broker` is present.
 
 The parts, one file each: :mod:`bench_common` (sizes, targets, helpers,
 machine), :mod:`bench_workloads` (generated graph, bulk load, update
 batches), :mod:`bench_contenders` (SciPy, NetworkX, igraph),
 :mod:`bench_engine` (update batches, throughput, profiles, snapshots, real
-graph), :mod:`bench_end_to_end` (replay floor, service on a local broker) and
+graph), :mod:`bench_end_to_end` (replay floor, service on a local broker),
+:mod:`bench_replay` (the replay command against the orjson floor) and
 :mod:`bench_report` (tables, plot); the options are in :mod:`bench_options`
 (imported alone by the command line's parser). This module holds
 :func:`run_bench`, the entry point of the command.
@@ -57,6 +59,7 @@ from ranktide.replay.bench_common import (
 )
 from ranktide.replay.bench_end_to_end import measure_e2e, measure_replay
 from ranktide.replay.bench_per_node import measure_per_node
+from ranktide.replay.bench_replay import measure_replay_cli
 from ranktide.replay.bench_engine import (
     _copy_tracker, contenders_for, measure_backlog, measure_profiles, measure_real_graph,
     measure_snapshot, measure_throughput, reserve_for, run_batches, scaling_run, start_tracker,
@@ -120,6 +123,8 @@ def run_all(args: argparse.Namespace, folder: Path) -> dict:
     report["peak_rss_bytes"] = _peak_rss_bytes()
     del tr, loaded
     report["replay"] = measure_replay(src0, dst0, folder)
+    report["replay"]["command"] = measure_replay_cli(src0, dst0, SIZES[args.size][0], sampler, folder,
+                                                     args.seed + 13, args.repeats)
     _say("bundled real graph")
     report["real_graph"] = measure_real_graph(args.repeats, args.seed, missing)
     if args.skip_e2e:

@@ -3,10 +3,14 @@
 from __future__ import annotations
 
 import json
+import logging
+import queue
 import sys
+import threading
 import time
 from dataclasses import dataclass, field, replace
 from pathlib import Path
+from typing import Iterator
 
 import numpy as np
 
@@ -16,6 +20,8 @@ from ranktide.stream.logs import LogChunk, read_log, row_count_hint, seed_person
 from ranktide.stream.rootlock import RootLock
 from ranktide.stream.snapshots import (Counters, OutputError, SnapshotError, load_snapshot, select_snapshot,
                                        snapshot_dirs, write_snapshot)
+
+logger = logging.getLogger("ranktide.replay")
 
 
 @dataclass
@@ -94,6 +100,21 @@ class ReplaySummary:
         out += [f"bound[{name}]  {b:.3g} (certified normalised L1 error)" for name, b in self.bounds.items()]
         out.append(f"time           {self.seconds:.2f} s")
         return out
+
+
+@dataclass
+class Timings:
+    """Seconds a replay spent in each phase (logged at DEBUG level, read by ``ranktide bench``)."""
+
+    read_parse: float = 0.0  # in the reader thread, overlapping the rest
+    waiting: float = 0.0  # for the reader thread
+    apply: float = 0.0
+    snapshot: float = 0.0
+
+    def line(self, total: float) -> str:
+        return (f"replay timing: read+parse {self.read_parse:.3f} s (in a reader thread; waited for "
+                f"{self.waiting:.3f} s), apply {self.apply:.3f} s (ids interned included), snapshot "
+                f"{self.snapshot:.3f} s, total {total:.3f} s")
 
 
 class RejectsWriter:
@@ -253,6 +274,78 @@ def _segment_batch(chunk: LogChunk, seg: Segment) -> tuple[EventBatch, int]:
     return p.batch.slice(int(lo), int(hi)), int(rhi - rlo)
 
 
+def _timed_chunks(chunks: Iterator[LogChunk], timings: Timings) -> Iterator[LogChunk]:
+    """The chunks, adding the time spent reading and parsing each to ``timings.read_parse``."""
+    while True:
+        started = time.perf_counter()
+        chunk = next(chunks, None)
+        timings.read_parse += time.perf_counter() - started
+        if chunk is None:
+            return
+        yield chunk
+
+
+def _prefetched(chunks: Iterator[LogChunk], timings: Timings, depth: int = 2) -> Iterator[LogChunk]:
+    """The chunks in order, read and parsed up to ``depth`` ahead by a worker thread.
+
+    Arrow's JSON reader and the compiled kernels release the interpreter lock,
+    so parsing the next chunks overlaps applying this one (and loading the
+    kernels at the start). An error of the reader is raised here, where the
+    chunk it broke would have come; leaving early stops the worker.
+    """
+    ready: queue.Queue = queue.Queue(maxsize=depth)
+    stop = threading.Event()
+    worker = threading.Thread(target=_produce, args=(_timed_chunks(chunks, timings), ready, stop),
+                              name="replay-reader", daemon=True)
+    worker.start()
+    try:
+        while True:
+            started = time.perf_counter()
+            kind, item = ready.get()
+            timings.waiting += time.perf_counter() - started
+            if kind == "error":
+                raise item
+            if kind == "end":
+                return
+            yield item
+    finally:
+        stop.set()
+        while worker.is_alive():  # free a worker blocked on a full queue
+            try:
+                ready.get(timeout=0.05)
+            except queue.Empty:
+                pass
+        worker.join()
+
+
+def _produce(chunks: Iterator[LogChunk], ready: queue.Queue, stop: threading.Event) -> None:
+    """Worker of :func:`_prefetched`: put ("chunk", c) items, then ("end", None) or ("error", exc)."""
+    try:
+        for chunk in chunks:
+            ready.put(("chunk", chunk))
+            if stop.is_set():
+                return
+        ready.put(("end", None))
+    except BaseException as exc:  # noqa: BLE001 - handed to the consuming thread, which raises it
+        ready.put(("error", exc))
+    finally:
+        chunks.close()
+
+
+def _load_kernels() -> None:
+    """Load the id-interning kernel from numba's cache, and numba's compiler state with it.
+
+    The first compiled call of a process sets numba up (about 0.5 s); made
+    here, on a throwaway id map, it overlaps the reader thread's parsing
+    instead of holding up the first chunk.
+    """
+    import pyarrow as pa
+
+    from ranktide.solver.ids import NodeIds
+
+    NodeIds().intern(pa.array(["-"], pa.string()))
+
+
 def _position_after(chunk: LogChunk, row: int) -> tuple[int, int]:
     """(offset, lines read) once input rows below ``row`` are consumed."""
     if row >= chunk.lines.size:
@@ -269,6 +362,7 @@ class _Replay:
         self.rejects = RejectsWriter(self.out / "rejects.jsonl", str(self.log))
         self.ranker, self.counters, self.offset, self.line, self.skip = self._start()
         self.written: list[Path] = []
+        self.timings = Timings()
         self.started_wall = time.monotonic()
 
     def _start(self):
@@ -293,8 +387,10 @@ class _Replay:
         return out
 
     def snapshot(self) -> Path:
+        started = time.perf_counter()
         path = write_snapshot(self.out, self.ranker, self.counters, self.positions())
         self.written.append(path)
+        self.timings.snapshot += time.perf_counter() - started
         return path
 
     def run(self, bar) -> None:
@@ -304,29 +400,43 @@ class _Replay:
         if rows:
             engine = self.ranker.engine
             engine.ensure_nodes(engine.n_nodes, max(rows - self.offset, 0))
-        chunks = read_log(self.log, opts.limits, self.offset, self.line + 1)
-        for chunk in chunks:
-            chunk = self._drop_covered(chunk)
-            for seg in plan.segments(chunk):
-                self._wait(seg)
-                batch, rejected = _segment_batch(chunk, seg)
-                apply_events(self.ranker, batch, self.counters, opts.micro_batch)
-                self.counters.events_rejected += rejected
-                self.offset, self.line = _position_after(chunk, seg.stop)
-                self._note_kafka(chunk, seg)
-                plan.advance(seg.stop - seg.start)
-                if seg.snapshot_after:
-                    self.snapshot()
-                if seg.stop_after:
-                    self.rejects.write_chunk(chunk, upto=seg.stop)
+        chunks = _prefetched(read_log(self.log, opts.limits, self.offset, self.line + 1), self.timings)
+        _load_kernels()  # while the reader thread parses the first chunks
+        try:
+            for chunk in chunks:
+                if self._chunk(self._drop_covered(chunk), plan):
                     return
-            self.rejects.write_chunk(chunk)
-            if bar is not None:
-                bar.update(chunk.end_offset - bar.n)
-                rate = self.counters.events_applied / max(time.monotonic() - self.started_wall, 1e-9)
-                # the bound is that of the state so far; a replay settles before each snapshot
-                bar.set_postfix(events=f"{self.counters.events_applied:,}", per_s=f"{rate:,.0f}",
-                                bound=f"{self.ranker.certified_bound():.2g}")
+                self._show(bar, chunk)
+        finally:
+            chunks.close()  # stops the reader thread when leaving early
+
+    def _chunk(self, chunk: LogChunk, plan: "_Plan") -> bool:
+        """Apply one chunk segment by segment; True when --until stops the replay in it."""
+        for seg in plan.segments(chunk):
+            self._wait(seg)
+            batch, rejected = _segment_batch(chunk, seg)
+            started = time.perf_counter()
+            apply_events(self.ranker, batch, self.counters, self.options.micro_batch)
+            self.timings.apply += time.perf_counter() - started
+            self.counters.events_rejected += rejected
+            self.offset, self.line = _position_after(chunk, seg.stop)
+            self._note_kafka(chunk, seg)
+            plan.advance(seg.stop - seg.start)
+            if seg.snapshot_after:
+                self.snapshot()
+            if seg.stop_after:
+                self.rejects.write_chunk(chunk, upto=seg.stop)
+                return True
+        self.rejects.write_chunk(chunk)
+        return False
+
+    def _show(self, bar, chunk: LogChunk) -> None:
+        if bar is not None:
+            bar.update(chunk.end_offset - bar.n)
+            rate = self.counters.events_applied / max(time.monotonic() - self.started_wall, 1e-9)
+            # the bound is that of the state so far; a replay settles before each snapshot
+            bar.set_postfix(events=f"{self.counters.events_applied:,}", per_s=f"{rate:,.0f}",
+                            bound=f"{self.ranker.certified_bound():.2g}")
 
     def _wait(self, seg: Segment) -> None:
         if seg.wall_offset is not None:
@@ -412,6 +522,7 @@ def replay_log(log: Path, out: Path, options: ReplayOptions = ReplayOptions()) -
     finally:
         lock.release()
     ranker = state.ranker
+    logger.debug(state.timings.line(time.perf_counter() - started))
     return ReplaySummary(
         snapshot=path,
         counters=state.counters,

@@ -21,11 +21,15 @@ References
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 import numpy as np
-import scipy.sparse as sp
 
 from .metrics import certified_bound
+
+if TYPE_CHECKING:
+    # SciPy is imported where a matrix is built: a replay or a service never needs it
+    import scipy.sparse as sp
 
 
 @dataclass
@@ -57,6 +61,8 @@ def transition_transpose(
     src: np.ndarray, dst: np.ndarray, weight: np.ndarray, n: int
 ) -> sp.csr_matrix:
     """``P^T`` in CSR form from an edge list (duplicate pairs are summed)."""
+    import scipy.sparse as sp
+
     out_w = np.bincount(src, weights=weight, minlength=n)
     return sp.csr_matrix((weight / out_w[src], (dst, src)), shape=(n, n))
 

@@ -125,6 +125,8 @@ class Ranker:
             return 0
         is_seed = batch.op == OP_SEED
         src = self.ids.intern(batch.src)
+        if not is_seed.any():  # edge events only: every dst is a node
+            return self.engine.apply(batch.op, src, self.ids.intern(batch.dst), batch.weight)
         dst = np.zeros(len(batch), dtype=np.int32)
         edge_rows = np.flatnonzero(~is_seed)
         if edge_rows.size:

@@ -608,22 +608,51 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: list[str] | None = None) -> int:
-    argv = sys.argv[1:] if argv is None else argv
+    """Run the command line; ``argv`` defaults to the program's arguments.
+
+    Run as the program (no ``argv``), a finished ``replay`` ends the process
+    at once (:func:`_exit_now`).
+    """
+    code, command = _main(sys.argv[1:] if argv is None else argv)
+    if argv is None and command == "replay":
+        _exit_now(code)
+    return code
+
+
+def _exit_now(code: int) -> None:
+    """End the process without the interpreter's teardown, once every output is flushed.
+
+    Freeing numba's compiler state and Arrow's buffers at exit takes 0.3-0.5 s,
+    a fifth of a million-event replay; by now the replay has closed its
+    rejects file, fsynced its snapshot and released its lock, and no thread is
+    left.
+    """
+    logging.shutdown()
+    for stream in (sys.stdout, sys.stderr):
+        try:
+            stream.flush()
+        except (OSError, ValueError):  # a closed pipe or stream: nothing more to write there
+            pass
+    os._exit(code)
+
+
+def _main(argv: list[str]) -> tuple[int, str]:
+    """The exit code of the command ``argv`` names, and that command."""
     if argv[:1] == ["broker"]:
         # everything after 'broker' belongs to the broker's own parser, --help included
         from ranktide.stream import broker
 
-        return broker.main(argv[1:], prog="ranktide broker")
+        return broker.main(argv[1:], prog="ranktide broker"), "broker"
     parser = build_parser()
     args = parser.parse_args(argv)
     logging.basicConfig(level=getattr(logging, args.log_level),
                         format="%(asctime)s %(levelname)s %(name)s: %(message)s")
     try:
-        return int(args.func(args) or 0)
+        return int(args.func(args) or 0), args.command
     except KeyboardInterrupt:
-        return 130
+        return 130, args.command
     except BrokenPipeError:
-        return 0
+        return 0, args.command
 
 
 if __name__ == "__main__":

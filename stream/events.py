@@ -19,7 +19,6 @@ streams marked by the ``content-type`` header :data:`ARROW_CONTENT_TYPE`.
 
 from __future__ import annotations
 
-import io
 import json
 import math
 from dataclasses import dataclass, field
@@ -111,11 +110,43 @@ def _fast_parse(records: list[bytes], limits: Limits) -> pa.Table | None:
         return None
     if max(map(len, records)) > limits.max_record_bytes or not records[0].strip():
         return None
+    return _read_block(blob + b"\n", len(records))
+
+
+def parse_json_block(block: bytes, lengths: np.ndarray, limits: Limits = Limits()) -> Parsed | None:
+    """Parse JSON lines held in one buffer, each ending in a newline, without splitting them.
+
+    The fast path of a JSON Lines log (:func:`stream.logs.read_log`): Arrow's
+    JSON reader reads the buffer as it is. Returns None when the block needs
+    care (a blank or over-long line, a carriage return, a line Arrow refuses);
+    the caller then parses the lines one by one (:func:`parse_json_records`),
+    which gives each bad line its own reason.
+
+    Parameters
+    ----------
+    block : bytes
+        The lines, each ending in a newline.
+    lengths : int array
+        Bytes of each line, without its newline.
+    limits : Limits
+        Id-length and record-size caps.
+    """
+    if lengths.size == 0 or lengths.min() == 0 or lengths.max() > limits.max_record_bytes or b"\r" in block:
+        return None
+    if not block[: int(lengths[0])].strip():
+        return None
+    table = _read_block(block, int(lengths.size), threads=False)
+    return None if table is None else validate_table(table, limits)
+
+
+def _read_block(blob: bytes, rows: int, threads: bool = True) -> pa.Table | None:
+    """The table Arrow's JSON reader makes of ``blob``, or None unless it reads exactly ``rows`` rows."""
     try:
-        table = pj.read_json(io.BytesIO(blob + b"\n"), parse_options=_PARSE_OPTIONS)
+        table = pj.read_json(pa.BufferReader(blob), read_options=pj.ReadOptions(use_threads=threads),
+                             parse_options=_PARSE_OPTIONS)
     except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
         return None
-    return table if table.num_rows == len(records) else None
+    return table if table.num_rows == rows else None
 
 
 def _slow_parse(records: list[bytes], limits: Limits) -> Parsed:
@@ -214,6 +245,41 @@ def _column(table: pa.Table, name: str, typ: pa.DataType) -> pa.Array:
     return col if col.type == typ else pc.cast(col, typ)
 
 
+class _Rejects:
+    """Rows rejected so far and why; the first reason found for a row is the one kept.
+
+    Only rejected rows cost Python work: a block of good rows is checked with
+    vectorised masks alone.
+    """
+
+    def __init__(self, n: int, pre_reasons: list | None) -> None:
+        self.bad = np.zeros(n, dtype=bool)
+        self.reasons: dict[int, str] = {}
+        if pre_reasons is not None:
+            self.reasons = {i: str(r) for i, r in enumerate(pre_reasons) if r is not None}
+            self.bad[list(self.reasons)] = True
+
+    def add(self, mask: np.ndarray, reason) -> None:
+        """Reject the rows of ``mask`` not rejected yet; ``reason`` is text or ``reason(row)``."""
+        rows = np.flatnonzero(mask & ~self.bad)
+        if rows.size:
+            self.bad[rows] = True
+            for i in rows.tolist():
+                self.reasons[i] = reason(i) if callable(reason) else reason
+
+    def rows_and_reasons(self) -> tuple[np.ndarray, list[str]]:
+        rows = np.flatnonzero(self.bad).astype(np.int64)
+        return rows, [self.reasons[i] for i in rows.tolist()]
+
+
+def _op_codes(op_text: pa.Array) -> np.ndarray:
+    """The op code of each row, -1 for a missing or unknown op."""
+    op = np.full(len(op_text), -1, dtype=np.int8)
+    for name, code in OPS.items():
+        op[pc.fill_null(pc.equal(op_text, name), False).to_numpy(zero_copy_only=False)] = code
+    return op
+
+
 def validate_table(table: pa.Table, limits: Limits = Limits(), pre_reasons: list | None = None) -> Parsed:
     """Validate event rows held in an Arrow table (vectorised).
 
@@ -222,61 +288,77 @@ def validate_table(table: pa.Table, limits: Limits = Limits(), pre_reasons: list
     already found while decoding (one per row, None for a row that decoded).
     """
     n = table.num_rows
-    reasons = np.array(pre_reasons if pre_reasons is not None else [None] * n, dtype=object)
+    rejects = _Rejects(n, pre_reasons)
     op_text = _column(table, "op", pa.string())
-    src = _column(table, "src", pa.string())
-    dst = _column(table, "dst", pa.string())
-    profile = _column(table, "profile", pa.string())
-    node = _column(table, "node", pa.string())
+    cols = {name: _column(table, name, pa.string()) for name in ("src", "dst", "profile", "node")}
     # an absent or null weight means the default 1.0; an explicit NaN stays and is rejected
     weight = pc.fill_null(_column(table, "weight", pa.float64()), 1.0).to_numpy(zero_copy_only=False)
     ts = _column(table, "ts", pa.int64()).fill_null(-1).to_numpy(zero_copy_only=False)
+    op = _op_codes(op_text)
+    _check_ops(op, op_text, rejects)
+    _check_ids(op, cols, limits, rejects)
+    _check_weights(op, weight, cols["profile"], rejects)
+    return Parsed(_valid_batch(op, cols, weight, ts, rejects.bad), *_valid_and_rejected(rejects))
 
-    op = np.full(n, -1, dtype=np.int8)
-    for name, code in OPS.items():
-        op[pc.fill_null(pc.equal(op_text, name), False).to_numpy(zero_copy_only=False)] = code
+
+def _valid_and_rejected(rejects: _Rejects) -> tuple[np.ndarray, np.ndarray, list[str]]:
+    bad_rows, reasons = rejects.rows_and_reasons()
+    return np.flatnonzero(~rejects.bad).astype(np.int64), bad_rows, reasons
+
+
+def _check_ops(op: np.ndarray, op_text: pa.Array, rejects: _Rejects) -> None:
+    rejects.add(pc.is_null(op_text).to_numpy(zero_copy_only=False), "missing field 'op'")
+    unknown = op < 0
+    if unknown.any():
+        values = op_text.to_pylist()
+        rejects.add(unknown, lambda i: f"unknown op {str(values[i])[:40]!r} (expected insert, delete or seed)")
+
+
+def _check_ids(op: np.ndarray, cols: dict[str, pa.Array], limits: Limits, rejects: _Rejects) -> None:
+    """Edges need src and dst, seeds profile and node: present, not empty, not too long."""
     is_seed = op == OP_SEED
     is_edge = (op == OP_INSERT) | (op == OP_DELETE)
-
-    def reject(mask: np.ndarray, reason) -> None:
-        rows = np.flatnonzero(mask & np.equal(reasons, None))
-        for i in rows:
-            reasons[i] = reason(i) if callable(reason) else reason
-
-    op_null = pc.is_null(op_text).to_numpy(zero_copy_only=False)
-    reject(op_null, "missing field 'op'")
-    op_values = op_text.to_pylist() if (op < 0).any() else None
-    reject(op < 0, lambda i: f"unknown op {str(op_values[i])[:40]!r} (expected insert, delete or seed)")
-    for name, col, mask in (("src", src, is_edge), ("dst", dst, is_edge), ("profile", profile, is_seed), ("node", node, is_seed)):
+    for name, mask in (("src", is_edge), ("dst", is_edge), ("profile", is_seed), ("node", is_seed)):
+        if not mask.any():
+            continue
+        col = cols[name]
         null = pc.is_null(col).to_numpy(zero_copy_only=False)
-        reject(mask & null, f"missing field '{name}'")
+        rejects.add(mask & null, f"missing field '{name}'")
         length = pc.fill_null(pc.utf8_length(col), 0).to_numpy(zero_copy_only=False)
-        reject(mask & (length > limits.max_id_length), f"{name} longer than {limits.max_id_length} characters")
-        reject(mask & (length == 0) & ~null, f"{name} is empty")
+        rejects.add(mask & (length > limits.max_id_length), f"{name} longer than {limits.max_id_length} characters")
+        rejects.add(mask & (length == 0) & ~null, f"{name} is empty")
+
+
+def _check_weights(op: np.ndarray, weight: np.ndarray, profile: pa.Array, rejects: _Rejects) -> None:
+    is_seed = op == OP_SEED
     with np.errstate(invalid="ignore"):
         bad_edge_w = (op == OP_INSERT) & ~(np.isfinite(weight) & (weight > 0))
         bad_seed_w = is_seed & ~(np.isfinite(weight) & (weight >= 0))
         in_range = (weight >= MIN_WEIGHT) & (weight <= MAX_WEIGHT)
-    reject(bad_edge_w, lambda i: f"weight must be a finite number > 0, got {float(weight[i])!r}")
-    reject(bad_seed_w, lambda i: f"seed weight must be a finite number >= 0, got {float(weight[i])!r}")
-    reject(((op == OP_INSERT) | (is_seed & (weight != 0))) & ~in_range,
-           lambda i: f"weight {float(weight[i])!r} is outside [{MIN_WEIGHT:g}, {MAX_WEIGHT:g}]")
-    profile_is_global = pc.fill_null(pc.equal(profile, GLOBAL), False).to_numpy(zero_copy_only=False)
-    reject(is_seed & profile_is_global, "the global profile teleports uniformly; seed a named profile")
+    rejects.add(bad_edge_w, lambda i: f"weight must be a finite number > 0, got {float(weight[i])!r}")
+    rejects.add(bad_seed_w, lambda i: f"seed weight must be a finite number >= 0, got {float(weight[i])!r}")
+    rejects.add(((op == OP_INSERT) | (is_seed & (weight != 0))) & ~in_range,
+                lambda i: f"weight {float(weight[i])!r} is outside [{MIN_WEIGHT:g}, {MAX_WEIGHT:g}]")
+    if is_seed.any():
+        is_global = pc.fill_null(pc.equal(profile, GLOBAL), False).to_numpy(zero_copy_only=False)
+        rejects.add(is_seed & is_global, "the global profile teleports uniformly; seed a named profile")
 
-    ok = np.equal(reasons, None)
-    rows = np.flatnonzero(ok)
+
+def _valid_batch(op: np.ndarray, cols: dict[str, pa.Array], weight: np.ndarray, ts: np.ndarray,
+                 bad: np.ndarray) -> EventBatch:
+    """The valid rows as events: a seed's node goes in ``src`` and its profile in ``dst``."""
+    rows = np.flatnonzero(~bad)
+    seed_ok = op[rows] == OP_SEED
     take = pa.array(rows)
-    seed_ok = is_seed[rows]
-    batch = EventBatch(
-        op[rows],
-        pc.if_else(pa.array(seed_ok), node.take(take), src.take(take)),
-        pc.if_else(pa.array(seed_ok), profile.take(take), dst.take(take)),
-        weight[rows].astype(np.float64),
-        ts[rows].astype(np.int64),
-    )
-    bad = np.flatnonzero(~ok)
-    return Parsed(batch, rows.astype(np.int64), bad.astype(np.int64), [str(reasons[i]) for i in bad])
+    if seed_ok.any():
+        mask = pa.array(seed_ok)
+        src = pc.if_else(mask, cols["node"].take(take), cols["src"].take(take))
+        dst = pc.if_else(mask, cols["profile"].take(take), cols["dst"].take(take))
+    elif rows.size == op.size:  # every row a valid edge event: the columns as they are
+        src, dst = cols["src"], cols["dst"]
+    else:
+        src, dst = cols["src"].take(take), cols["dst"].take(take)
+    return EventBatch(op[rows], src, dst, weight[rows].astype(np.float64), ts[rows].astype(np.int64))
 
 
 # ------------------------------------------------------------------ message values

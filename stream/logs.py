@@ -30,7 +30,8 @@ import pyarrow.parquet as pq
 
 from ranktide.solver import EventBatch, Ranker
 from ranktide.stream.events import (
-    ARROW_CONTENT_TYPE, FIELDS, Limits, Parsed, decode_values, parse_json_records, ts_millis, validate_table,
+    ARROW_CONTENT_TYPE, FIELDS, Limits, Parsed, decode_values, parse_json_block, parse_json_records, ts_millis,
+    validate_table,
 )
 
 CHUNK_BYTES = 8 << 20
@@ -188,35 +189,38 @@ def _read_jsonl(
                 else:
                     carry = data
                     continue
-            body, carry = data[:cut], data[cut:]
-            lines_in_body = body.count(b"\n") + (0 if body.endswith(b"\n") else 1)
-            yield _jsonl_chunk(body, offset, line_no, line_no - 1 + lines_in_body, limits)
-            line_no += lines_in_body
+            body, carry = (data, b"") if cut == len(data) else (data[:cut], data[cut:])
+            chunk = _jsonl_chunk(body, offset, line_no, limits)
+            yield chunk
+            line_no = chunk.end_line + 1
             offset += len(body)
             if at_end:
                 return
 
 
-def _jsonl_chunk(body: bytes, offset: int, line_no: int, end_line: int, limits: Limits) -> LogChunk:
-    text = body[:-1] if body.endswith(b"\n") else body
-    records = text.split(b"\n")
-    starts = np.concatenate(([0], np.flatnonzero(np.frombuffer(text, np.uint8) == 10) + 1)).astype(np.int64)
-    lengths = np.diff(np.append(starts, len(text) + 1)) - 1
-    blank = lengths == 0
-    if blank.any():
-        keep = np.flatnonzero(~blank)
-        records = [records[i] for i in keep]
+def _jsonl_chunk(body: bytes, offset: int, line_no: int, limits: Limits) -> LogChunk:
+    """The lines of ``body`` (the first is line ``line_no``, at byte ``offset``) parsed and placed."""
+    size = len(body) - 1 if body.endswith(b"\n") else len(body)  # without the last newline
+    starts = np.concatenate(([0], np.flatnonzero(np.frombuffer(body, np.uint8, count=size) == 10) + 1))
+    lengths = np.diff(np.append(starts, size + 1)) - 1  # one per line, a blank one included
+    end_line = line_no - 1 + lengths.size
+    # the whole chunk through Arrow's JSON reader at once; line by line only when it needs care
+    parsed = parse_json_block(body if size < len(body) else body + b"\n", lengths, limits)
+    if parsed is not None:
+        keep = np.arange(lengths.size)
     else:
-        keep = np.arange(len(records))
-    parsed = parse_json_records(records, limits)
-    return LogChunk(
-        parsed,
-        line_no + keep.astype(np.int64),
-        offset + starts[keep],
-        offset + len(body),
-        end_line,
-        lambda i: records[i].decode("utf-8", "replace"),
-    )
+        records = body[:size].split(b"\n")
+        keep = np.flatnonzero(lengths > 0)  # blank lines are no records
+        if keep.size < lengths.size:
+            records = [records[i] for i in keep]
+        parsed = parse_json_records(records, limits)
+
+    def raw(i: int) -> str:
+        row = int(keep[i])
+        return body[starts[row]:starts[row] + lengths[row]].decode("utf-8", "replace")
+
+    return LogChunk(parsed, line_no + keep.astype(np.int64), offset + starts[keep].astype(np.int64),
+                    offset + len(body), end_line, raw)
 
 
 def _table_chunk(table: pa.Table, first_row: int, limits: Limits, first_line: int) -> LogChunk:

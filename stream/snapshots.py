@@ -170,6 +170,27 @@ def _name_ranks(names: pa.Array) -> np.ndarray:
     return ranks
 
 
+def _repeated(text: str, count: int) -> pa.Array:
+    """``text`` ``count`` times as a string column (decoded from a one-word dictionary, no object per row)."""
+    import numpy as np
+    import pyarrow as pa
+
+    codes = pa.array(np.zeros(count, dtype=np.int32))
+    return pa.DictionaryArray.from_arrays(codes, pa.array([text], pa.string())).dictionary_decode()
+
+
+def _edge_order(src: np.ndarray, dst: np.ndarray, ranks: np.ndarray) -> np.ndarray:
+    """Order of the edges by (source name, target name): one sort of one int64 key per edge.
+
+    Name ranks are below the node count ``n`` (< 2**31), so ``rank(src) * n
+    + rank(dst)`` fits in an int64 and orders the pairs as the names do.
+    """
+    import numpy as np
+
+    n = np.int64(max(ranks.size, 1))
+    return np.argsort(ranks[src] * n + ranks[dst], kind="stable")
+
+
 def _by_rank(ids: np.ndarray, ranks: np.ndarray) -> np.ndarray:
     """``ids`` reordered so that their names ascend."""
     import numpy as np
@@ -201,7 +222,7 @@ def _tables(ranker: Ranker, certificates: dict[str, Certificate]) -> dict[str, p
         keep = _by_rank(keep, ranks)
         score_parts.append(pa.table({
             "node": names.take(pa.array(keep)),
-            "profile": pa.array(np.full(keep.size, name, dtype=object), pa.string()),
+            "profile": _repeated(name, keep.size),
             "score": pa.array(sc[keep], pa.float64()),
             "error_bound": pa.array(cert.bounds[keep], pa.float64()),
         }))
@@ -209,12 +230,12 @@ def _tables(ranker: Ranker, certificates: dict[str, Certificate]) -> dict[str, p
             s = eng.teleport_vector(name)
             seeded = _by_rank(np.flatnonzero(s), ranks)
             seed_parts.append(pa.table({
-                "profile": pa.array(np.full(seeded.size, name, dtype=object), pa.string()),
+                "profile": _repeated(name, seeded.size),
                 "node": names.take(pa.array(seeded)),
                 "weight": pa.array(s[seeded], pa.float64()),
             }))
     src, dst, w = eng.graph.edge_list()
-    order = np.lexsort((ranks[dst], ranks[src]))
+    order = _edge_order(src, dst, ranks)
     edges = pa.table({
         "src": names.take(pa.array(src[order])),
         "dst": names.take(pa.array(dst[order])),

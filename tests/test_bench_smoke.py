@@ -76,6 +76,11 @@ def test_other_sections_report_positive_figures(report: dict) -> None:
         part = report["replay"][fmt]
         assert _positive(part["ratio"]), fmt
         assert part["events_applied"] == report["replay"]["events"], fmt
+    command = report["replay"]["command"]  # ranktide replay in a child process against the orjson floor
+    assert command["events_applied"] == command["events"] == command["inserts"] + command["mixed"]
+    assert _positive(command["ratio"]) and command["ratio"] == command["replay_seconds"] / command["orjson_floor_seconds"]
+    for key in ("imports_seconds", "read_parse_seconds", "apply_seconds", "snapshot_seconds", "start_up_seconds"):
+        assert _positive(command["breakdown"][key]), key
     assert report["machine"]["nproc"] >= 1
 
 

@@ -397,7 +397,7 @@ class Blocker:
     """Make the bench extras look uninstalled: their import fails as if they were missing."""
 
     def find_spec(self, name, path=None, target=None):
-        if name.split(".")[0] in ("igraph", "networkx", "onadata"):
+        if name.split(".")[0] in ("igraph", "networkx", "onadata", "orjson"):
             raise ModuleNotFoundError(f"No module named {name!r}")
         return None
 
@@ -424,6 +424,10 @@ def test_bench_without_the_extras_runs_what_is_installed_and_names_the_rest(tmp_
     assert all("warm_start" in r and "networkx" not in r and "igraph_prpack" not in r for r in rows)
     assert all(r["ranktide"]["max_error"] <= r["ranktide"]["max_certified_bound"] + 1e-10 for r in rows)
     assert "skipped" in report["real_graph"]
+    command = report["replay"]["command"]  # the replay is measured, its orjson floor named as missing
+    assert command["orjson_floor_seconds"] is None and command["ratio"] is None
+    assert command["events_applied"] == command["events"]
+    assert "orjson is not installed" in done.stderr
 
 
 def test_replay_whose_rejects_fill_the_disk_exits_3(tiny_disk: Path, tmp_path: Path) -> None:
