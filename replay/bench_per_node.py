@@ -260,3 +260,46 @@ def measure_per_node(loaded: Loaded, sizes: list[int], repeats: int, seed: int, 
         "max_relative_error": max(r["ranktide"]["max_relative_error"] for r in rows),
         "within_bounds": all(r["ranktide"]["within_bounds"] for r in rows),
     }
+
+
+def main(argv: list[str] | None = None) -> int:
+    """``python -m ranktide.replay.bench_per_node``: the per-node section of ``ranktide bench`` alone."""
+    import argparse
+    import json
+
+    from ranktide.replay.bench_common import BACKLOG_BATCHES, machine_info
+    from ranktide.replay.bench_contenders import missing_contenders
+    from ranktide.replay.bench_engine import reserve_for
+    from ranktide.replay.bench_options import SIZES, _batch_list
+    from ranktide.replay.bench_report import _per_node_lines
+    from ranktide.replay.bench_workloads import generated, load_graph, warm_up_kernels
+    from ranktide.stream.config import ServiceConfig
+
+    p = argparse.ArgumentParser(prog="python -m ranktide.replay.bench_per_node",
+                                description="The per-node contract of ranktide bench alone: ranktide against the "
+                                            "certified and oracle warm starts, latency, push cost, backlog and a "
+                                            "personalized stream, on one generated graph.")
+    p.add_argument("--size", choices=list(SIZES), default="medium", help="generated graph (default medium)")
+    p.add_argument("--batches", type=_batch_list, default=[1, 10, 100, 1000],
+                   help="batch sizes, comma-separated (default 1,10,100,1000)")
+    p.add_argument("--repeats", type=int, default=3, help="batches measured per size (default 3)")
+    p.add_argument("--seed", type=int, default=0, help="seed of the graph and events (default 0)")
+    p.add_argument("--json", action="store_true", help="print one JSON object instead of text")
+    args = p.parse_args(argv)
+    warm_up_kernels()
+    src, dst, sampler, info = generated(args.size, args.seed)
+    loaded = load_graph(SIZES[args.size][0], src, dst, np.ones(src.size), sampler)
+    reserve_for(loaded, args.batches + [STREAM_BATCH] * STREAM_BATCHES, args.repeats)
+    outside = [c for c in ("igraph_prpack",) if c not in missing_contenders()]
+    config = ServiceConfig()
+    report = {"machine": machine_info(), "graph": info, "load": loaded.info,
+              "per_node": measure_per_node(loaded, args.batches, args.repeats, args.seed, outside, config.micro_batch,
+                                           BACKLOG_BATCHES[args.size], config.settle_interval)}
+    print(json.dumps(report, indent=1, default=float) if args.json else "\n".join(_per_node_lines(report["per_node"])))
+    return 0
+
+
+if __name__ == "__main__":
+    import sys
+
+    sys.exit(main())

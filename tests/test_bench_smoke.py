@@ -99,3 +99,15 @@ def test_per_node_section_holds_its_contract(report: dict) -> None:
         assert row["ranktide"]["within_bounds"] and row["ranktide"]["max_relative_error"] <= 1e-3, row["batch"]
         # the certified warm start keeps the same promise
         assert row["warm_start"]["max_relative_error"] <= 1e-3, row["batch"]
+
+
+def test_the_per_node_section_runs_alone_and_holds_its_contract() -> None:
+    """``python -m ranktide.replay.bench_per_node`` prints the section ``ranktide bench`` has."""
+    cmd = [sys.executable, "-m", "ranktide.replay.bench_per_node", "--size", "tiny", "--batches", "1,10",
+           "--repeats", "1", "--json"]
+    done = subprocess.run(cmd, capture_output=True, text=True, timeout=900)
+    assert done.returncode == 0, done.stderr[-3000:]
+    section = json.loads(done.stdout)["per_node"]
+    assert [row["batch"] for row in section["batches"]] == [1, 10]
+    assert section["within_bounds"] is True and section["max_relative_error"] <= section["rtol"]
+    assert _positive(section["push_ns_per_edge"]) and _positive(section["latency_ms"]["p50"])
