@@ -176,19 +176,21 @@ def _latency(run: PerNodeRun, count: int) -> dict:
             "max": float(times.max())}
 
 
-def _push_cost(run: PerNodeRun) -> float | None:
-    """Nanoseconds per pushed edge: settle time over pushed edges, in a stream of small batches.
+def _stream(run: PerNodeRun) -> dict:
+    """Batches of :data:`STREAM_BATCH` events back to back, as a service sees them; and the push cost.
 
-    The single events of the latency figures and :data:`STREAM_BATCHES` batches of
-    :data:`STREAM_BATCH` events, back to back as a service would see them (no
-    contender runs in between to evict the engine's arrays from the caches);
-    settles that needed a sweep are left out. Includes the settle's fixed cost
-    and its queue work, not just the loop over edges.
+    No contender runs between these batches to evict the engine's arrays from
+    the caches (the batch table measures each batch right after the
+    contenders). ``push_ns_per_edge`` is settle time over pushed edges, over
+    the single events of the latency figures and these batches, leaving out
+    settles that needed a sweep; it includes the settle's fixed cost and its
+    queue work, not only the loop over edges.
     """
-    for _ in range(STREAM_BATCHES):
-        run.step(STREAM_BATCH)
+    times = np.array([run.step(STREAM_BATCH)[0] for _ in range(STREAM_BATCHES)]) * 1e3
     push_only = [v for v in run.push_log if v[2] == 0 and v[1] > 0]
-    return 1e9 * sum(v[0] for v in push_only) / sum(v[1] for v in push_only) if push_only else None
+    push_ns = 1e9 * sum(v[0] for v in push_only) / sum(v[1] for v in push_only) if push_only else None
+    return {"batch": STREAM_BATCH, "batches": STREAM_BATCHES, "p50_ms": float(np.percentile(times, 50)),
+            "p99_ms": float(np.percentile(times, 99)), "push_ns_per_edge": push_ns}
 
 
 def _backlog(run: PerNodeRun, micro_batch: int, count: int, settle_interval: float) -> dict:
@@ -240,7 +242,7 @@ def measure_per_node(loaded: Loaded, sizes: list[int], repeats: int, seed: int, 
         bar.close()
     run.push_log.clear()
     latency = _latency(run, LATENCY_EVENTS)
-    push_ns = _push_cost(run)
+    stream = _stream(run)
     backlog = _backlog(PerNodeRun(loaded, seed + 103), micro_batch, backlog_batches, settle_interval)
     profiles = _seed(run, PERSONAL_PROFILES)
     personal = _summary(PERSONAL_BATCH, [run.measure(PERSONAL_BATCH, ["warm_start", "oracle_warm_start"],
@@ -256,7 +258,8 @@ def measure_per_node(loaded: Loaded, sizes: list[int], repeats: int, seed: int, 
         "events_per_second": backlog["events_per_second"],
         "backlog": backlog,
         "personalized": {"profiles": PERSONAL_PROFILES, "batch": PERSONAL_BATCH, **personal},
-        "push_ns_per_edge": push_ns,
+        "stream": stream,
+        "push_ns_per_edge": stream["push_ns_per_edge"],
         "max_relative_error": max(r["ranktide"]["max_relative_error"] for r in rows),
         "within_bounds": all(r["ranktide"]["within_bounds"] for r in rows),
     }
