@@ -25,6 +25,21 @@ from numba.extending import intrinsic
 _READ, _LOCALITY, _DATA = 0, 3, 1
 
 
+def _prefetch_codegen(context, builder, signature, args):
+    """Emit ``llvm.prefetch`` of the element ``args[0][args[1:]]`` (indices of any integer type)."""
+    array_type = signature.args[0]
+    view = context.make_array(array_type)(context, builder, args[0])
+    index = [context.cast(builder, value, kind, types.intp) for value, kind in zip(args[1:], signature.args[1:])]
+    address = cgutils.get_item_pointer(context, builder, array_type, view, index, wraparound=False)
+    i8_ptr = ir.IntType(8).as_pointer()
+    i32 = ir.IntType(32)
+    fn_type = ir.FunctionType(ir.VoidType(), [i8_ptr, i32, i32, i32])
+    fn = cgutils.get_or_insert_function(builder.module, fn_type, "llvm.prefetch.p0")
+    builder.call(fn, [builder.bitcast(address, i8_ptr), ir.Constant(i32, _READ),
+                      ir.Constant(i32, _LOCALITY), ir.Constant(i32, _DATA)])
+    return context.get_dummy_value()
+
+
 @intrinsic
 def prefetch(typingctx, array, index):
     """Hint the processor to load ``array[index]`` into cache; no effect on results.
@@ -34,21 +49,7 @@ def prefetch(typingctx, array, index):
     """
     if not isinstance(array, types.Array) or array.ndim != 1 or not isinstance(index, types.Integer):
         return None
-    sig = types.void(array, index)
-
-    def codegen(context, builder, signature, args):
-        array_type = signature.args[0]
-        view = context.make_array(array_type)(context, builder, args[0])
-        address = cgutils.get_item_pointer(context, builder, array_type, view, [args[1]], wraparound=False)
-        i8_ptr = ir.IntType(8).as_pointer()
-        i32 = ir.IntType(32)
-        fn_type = ir.FunctionType(ir.VoidType(), [i8_ptr, i32, i32, i32])
-        fn = cgutils.get_or_insert_function(builder.module, fn_type, "llvm.prefetch.p0")
-        builder.call(fn, [builder.bitcast(address, i8_ptr), ir.Constant(i32, _READ),
-                          ir.Constant(i32, _LOCALITY), ir.Constant(i32, _DATA)])
-        return context.get_dummy_value()
-
-    return sig, codegen
+    return types.void(array, index), _prefetch_codegen
 
 
 @intrinsic
@@ -60,19 +61,4 @@ def prefetch_2d(typingctx, array, row, col):
     if not isinstance(array, types.Array) or array.ndim != 2 or not isinstance(row, types.Integer) \
             or not isinstance(col, types.Integer):
         return None
-    sig = types.void(array, row, col)
-
-    def codegen(context, builder, signature, args):
-        array_type = signature.args[0]
-        view = context.make_array(array_type)(context, builder, args[0])
-        index = [context.cast(builder, args[n], signature.args[n], types.intp) for n in (1, 2)]
-        address = cgutils.get_item_pointer(context, builder, array_type, view, index, wraparound=False)
-        i8_ptr = ir.IntType(8).as_pointer()
-        i32 = ir.IntType(32)
-        fn_type = ir.FunctionType(ir.VoidType(), [i8_ptr, i32, i32, i32])
-        fn = cgutils.get_or_insert_function(builder.module, fn_type, "llvm.prefetch.p0")
-        builder.call(fn, [builder.bitcast(address, i8_ptr), ir.Constant(i32, _READ),
-                          ir.Constant(i32, _LOCALITY), ir.Constant(i32, _DATA)])
-        return context.get_dummy_value()
-
-    return sig, codegen
+    return types.void(array, row, col), _prefetch_codegen
