@@ -121,19 +121,7 @@ class SettleStats:
         self.phases += other.phases
 
 
-def _check_weights(op: np.ndarray, weight: np.ndarray) -> None:
-    """ValueError unless insert weights and non-zero seed weights lie in [MIN_WEIGHT, MAX_WEIGHT]."""
-    inserts, seeds = op == kernels.OP_INSERT, op == kernels.OP_SEED
-    with np.errstate(invalid="ignore"):
-        ok = (weight >= MIN_WEIGHT) & (weight <= MAX_WEIGHT)
-    bad = (inserts & ~ok) | (seeds & ~(ok | (weight == 0.0)))
-    if bad.any():
-        i = int(np.flatnonzero(bad)[0])
-        raise ValueError(f"event {i}: weight {weight[i]!r} outside [{MIN_WEIGHT:g}, {MAX_WEIGHT:g}] "
-                         "(seeds may also be 0)")
-
-
-def _reject(i: int, op: np.ndarray, src: np.ndarray, dst: np.ndarray, weight: np.ndarray) -> None:
+def _reject(i: int, src: np.ndarray, dst: np.ndarray, weight: np.ndarray) -> None:
     """Raise the ValueError for event ``i``, found bad by :func:`kernels.check_batch`."""
     if src[i] < 0 or dst[i] < 0:
         raise ValueError(f"event {i}: negative node id or profile row ({int(src[i])} -> {int(dst[i])})")
@@ -310,7 +298,7 @@ class Engine:
             return 0
         bad, top, n_inserts = kernels.check_batch(op, src, dst, weight, MIN_WEIGHT, MAX_WEIGHT)
         if bad >= 0:
-            _reject(int(bad), op, src, dst, weight)
+            _reject(int(bad), src, dst, weight)
         graph = self.graph
         if top > graph.n_nodes:
             self.ensure_nodes(int(top), int(n_inserts))
@@ -421,11 +409,7 @@ class Engine:
 
     def _sum_shift(self, k: int) -> float:
         """``||r_k||_1 / sum p_k``: how far the normalisation may move (``inf`` before any estimate)."""
-        r1 = kernels.active_l1(k, self.R, self._active, self._n_active, self._parked)
-        if r1 == 0.0:
-            return 0.0  # an exact estimate, or an empty profile: nothing can shift
-        s_p = self._psum[k]
-        return r1 / s_p if s_p > r1 else np.inf
+        return kernels.sum_shift(k, self.R, self._active, self._n_active, self._parked, self._psum)
 
     def _settle_global(self) -> SettleStats:
         """Push the global profile to the largest threshold that certifies ``rtol``.
@@ -441,7 +425,7 @@ class Engine:
         """
         g = self.graph.arrays
         stats = np.zeros(5, dtype=np.int64)
-        edge_limit = max(PUSH_EDGE_SHARE * self.n_edges, PUSH_EDGE_FLOOR)
+        edge_limit = self._edge_limit()
         beta = self._global_limit(0.0)  # the top rung: delta is usually tiny
         for _ in range(1_000):
             handover, beta = kernels.push_global(
@@ -454,6 +438,10 @@ class Engine:
                 break
         self._weights[0] = Weights(0.0, beta)
         return SettleStats(*(int(x) for x in stats))
+
+    def _edge_limit(self) -> float:
+        """Edges a per-node push may touch before it hands over to global sweeps."""
+        return max(PUSH_EDGE_SHARE * self.n_edges, PUSH_EDGE_FLOOR)
 
     def _global_limit(self, delta: float) -> float:
         """Largest ``max |r_g|`` certifying ``rtol`` given the sum shift ``delta`` (0 if none does)."""
@@ -543,7 +531,7 @@ class Engine:
             # thresholds fell below residuals parked earlier: list every node again
             kernels.relist_active(k, self.R, n, self._active, self._n_active, self._flags, self._parked)
             self._parked_max[k] = 0.0
-        edge_limit = max(PUSH_EDGE_SHARE * self.n_edges, PUSH_EDGE_FLOOR)
+        edge_limit = self._edge_limit()
         unit = self.graph.unit_weights
         for _ in range(1_000):
             handover = kernels.push_to_thresholds(
@@ -757,8 +745,10 @@ class Engine:
         weight = np.ascontiguousarray(weight, dtype=np.float64)
         if not src.size:
             return
-        _check_weights(np.zeros(src.size, np.int8), weight)
-        if min(int(src.min()), int(dst.min())) < 0 or max(int(src.max()), int(dst.max())) >= self.n_nodes:
+        bad, top, _ = kernels.check_batch(np.zeros(src.size, np.int8), src, dst, weight, MIN_WEIGHT, MAX_WEIGHT)
+        if bad >= 0 and src[bad] >= 0 and dst[bad] >= 0:
+            _reject(int(bad), src, dst, weight)
+        if bad >= 0 or top > self.n_nodes:
             raise ValueError(f"edge endpoints must lie in 0 .. {self.n_nodes - 1}")
         sizes = self.graph.slots_for(np.bincount(src, minlength=self.n_nodes)).astype(np.int32)
         self.graph.reserve_slots(int(sizes.sum()))

@@ -269,10 +269,10 @@ def _mark(k, v, R, active, n_active, flags, parked):
 
 
 @njit(cache=True, inline="always")
-def _repair_rescale(P, R, k, u, v, w_old, w_new, W_old, W_new, a, d, active, n_active, in_active, parked, psum):
+def _repair_rescale(P, R, k, u, v, w_old, w_new, W_old, W_new, a, d, active, n_active, flags, parked, psum):
     """O(1) repair of [2]: rescale p(u) so flows on u's other edges stay put."""
-    _mark(k, u, R, active, n_active, in_active, parked)
-    _mark(k, v, R, active, n_active, in_active, parked)
+    _mark(k, u, R, active, n_active, flags, parked)
+    _mark(k, v, R, active, n_active, flags, parked)
     p_u = P[k, u]
     if W_old == 0.0:
         # u was dangling: its row becomes e_v, p(u) is unchanged
@@ -294,7 +294,7 @@ def _repair_rescale(P, R, k, u, v, w_old, w_new, W_old, W_new, a, d, active, n_a
 
 @njit(cache=True, inline="always")
 def _repair_neighbours(P, R, k, u, v, w_old, W_old, W_new, start, out_degree, dst, weight, a, d,
-                       active, n_active, in_active, parked):
+                       active, n_active, flags, parked):
     """O(deg u) repair: keep p(u), correct r on each out-neighbour of u.
 
     The correction is ``(d/a) p(u) (P'(u, y) - P(u, y))`` for every ``y``; it sums
@@ -313,11 +313,11 @@ def _repair_neighbours(P, R, k, u, v, w_old, W_old, W_new, start, out_degree, ds
             before = (w_old if y == v else w) / W_old
         if y == v:
             seen_v = True
-        _mark(k, y, R, active, n_active, in_active, parked)
+        _mark(k, y, R, active, n_active, flags, parked)
         R[k, y] += c * (w / W_new - before)
     if not seen_v and W_old > 0.0:
         # the edge u -> v was removed: its old flow leaves v
-        _mark(k, v, R, active, n_active, in_active, parked)
+        _mark(k, v, R, active, n_active, flags, parked)
         R[k, v] -= c * w_old / W_old
 
 
@@ -381,7 +381,7 @@ def _prefetch_block(kind, u, start, out_degree, e_dst, e_w):
 def apply_events(
     op, src, dst, wt,
     start, cap, out_weight, out_degree, e_dst, e_w, free_blocks, table, counters,
-    P, R, S, a, d, active, n_active, in_active, parked, seed_error, local_max_degree, psum, first,
+    P, R, S, a, d, active, n_active, flags, parked, seed_error, local_max_degree, psum, first,
 ):
     """Apply events ``first ..`` of one batch in order and repair every profile.
 
@@ -413,15 +413,15 @@ def apply_events(
     near = APPLY_PREFETCH_AHEAD // 2
     nearest = APPLY_PREFETCH_AHEAD // 4
     for i in range(first, min(first + far, end)):
-        _prefetch_nodes(op[i], src[i], dst[i], table, shift, start, cap, out_weight, out_degree, P, R, in_active)
+        _prefetch_nodes(op[i], src[i], dst[i], table, shift, start, cap, out_weight, out_degree, P, R, flags)
     for i in range(first, end):
         if i + far < end:
             _prefetch_nodes(op[i + far], src[i + far], dst[i + far], table, shift, start, cap, out_weight,
-                            out_degree, P, R, in_active)
+                            out_degree, P, R, flags)
         if i + near < end:
             _prefetch_block(op[i + near], src[i + near], start, out_degree, e_dst, e_w)
         if i + nearest < end:
-            _prefetch_neighbours(op[i + nearest], src[i + nearest], start, out_degree, e_dst, R, in_active, local_max_degree)
+            _prefetch_neighbours(op[i + nearest], src[i + nearest], start, out_degree, e_dst, R, flags, local_max_degree)
         kind = op[i]
         u = src[i]
         v = dst[i]
@@ -434,7 +434,7 @@ def apply_events(
             # flow terms rounds them away, so the rounding is tallied for the engine to repair
             seed_error[v] += 2.3e-16 * (abs(R[v, u]) + abs(S[v, u]) + abs(wt[i]))
             S[v, u] = wt[i]
-            _mark(v, u, R, active, n_active, in_active, parked)
+            _mark(v, u, R, active, n_active, flags, parked)
             R[v, u] += change
             continue
         cell = find_cell(table, shift, start, out_degree, e_dst, u, v)
@@ -496,10 +496,10 @@ def apply_events(
         for k in range(n_prof):
             if local:
                 _repair_neighbours(P, R, k, u, v, w_old, W_old, W_new, start, out_degree, e_dst, e_w,
-                                   a, d, active, n_active, in_active, parked)
+                                   a, d, active, n_active, flags, parked)
             else:
                 _repair_rescale(P, R, k, u, v, w_old, w_new, W_old, W_new, a, d,
-                                active, n_active, in_active, parked, psum)
+                                active, n_active, flags, parked, psum)
     return noop, op.shape[0]
 
 
@@ -668,6 +668,17 @@ def relist_active(k, R, n, active, n_active, flags, parked):
             flags[k, u] = 0
 
 
+@njit(cache=True, inline="always")
+def _unqueue_rest(flags, k, queue, qh, pending):
+    """Clear the QUEUED bit of the ``pending`` nodes left in the ring buffer from ``qh`` on."""
+    cap = queue.shape[0]
+    for _ in range(pending):
+        flags[k, queue[qh]] &= ~QUEUED
+        qh += 1
+        if qh == cap:
+            qh = 0
+
+
 @njit(cache=True, nogil=True)
 def settle_profile(
     k, tol, n, m,
@@ -777,12 +788,7 @@ def settle_profile(
                         qt = 0
                     pending += 1
                 stats[1] += 1
-        while pending > 0:
-            flags[k, queue[qh]] &= ~QUEUED
-            qh += 1
-            if qh == cap:
-                qh = 0
-            pending -= 1
+        _unqueue_rest(flags, k, queue, qh, pending)
         theta *= theta_step
         stats[4] += 1
         if theta < 1e-300:
@@ -984,21 +990,16 @@ def push_to_thresholds(
     n_active[k] = listed
     parked[k] -= unparked
     stats[1] += touched
-    while pending > 0:
-        fk[queue[qh]] &= ~QUEUED
-        qh += 1
-        if qh == cap:
-            qh = 0
-        pending -= 1
+    _unqueue_rest(flags, k, queue, qh, pending)
     return 1 if handover else 0
 
 
-@njit(cache=True, inline="always")
-def _sum_shift(k, R, active, n_active, parked, psum):
-    """``||r_k||_1 / sum p_k`` (``inf`` before any estimate), as ``Engine._sum_shift``."""
+@njit(cache=True, nogil=True)
+def sum_shift(k, R, active, n_active, parked, psum):
+    """``||r_k||_1 / sum p_k``: how far the normalisation may move (``inf`` before any estimate)."""
     r1 = active_l1(k, R, active, n_active, parked)
     if r1 == 0.0:
-        return 0.0
+        return 0.0  # an exact estimate, or an empty profile: nothing can shift
     return r1 / psum[k] if psum[k] > r1 else np.inf
 
 
@@ -1052,7 +1053,7 @@ def push_global(
         if push_to_thresholds(0, n, m, start, out_weight, out_degree, e_dst, e_w, P, R, S, 0.0, beta, a, d,
                               active, n_active, flags, parked, queue, edge_limit, stats, psum, unit):
             return 1, beta
-        limit = global_limit(_sum_shift(0, R, active, n_active, parked, psum), rtol, margin)
+        limit = global_limit(sum_shift(0, R, active, n_active, parked, psum), rtol, margin)
         if beta <= limit:
             break
         beta = ladder_rung(limit, beta, top)
