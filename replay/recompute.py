@@ -38,8 +38,8 @@ from ranktide.replay.recompute_common import (RecomputeError, RecomputeInput, Se
                                               recompute_manifest, write)
 from ranktide.solver.recompute import Targets, recompute
 from ranktide.stream.rootlock import LOCK_NAME, RootLock
-from ranktide.stream.snapshots import (Counters, OutputError, SnapshotError, contract_facts, read_manifest, snapshot_dirs,
-                                       snapshot_tables, verify)
+from ranktide.stream.snapshots import (Counters, OutputError, SnapshotError, contract_facts, parquet_filler,
+                                       read_manifest, snapshot_dirs, snapshot_tables, verify)
 
 
 
@@ -200,12 +200,7 @@ def recompute_local(inp: RecomputeInput, out: Path, settings: Settings, progress
              for name, it in result.profiles.items()}
     manifest = recompute_manifest(settings, "local", result.iterations, n, len(g.src), facts, inp,
                                   time.perf_counter() - started)
-
-    def fill(folder: Path) -> None:
-        for fname, table in tables.items():
-            pq.write_table(table, folder / fname, compression="zstd")
-
-    return write(out, fill, manifest)
+    return write(out, parquet_filler(tables), manifest)
 
 
 # ------------------------------------------------------------------ command line

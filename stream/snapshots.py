@@ -198,7 +198,7 @@ def _by_rank(ids: np.ndarray, ranks: np.ndarray) -> np.ndarray:
     return ids[np.argsort(ranks[ids], kind="stable")]
 
 
-def _tables(ranker: Ranker, certificates: dict[str, Certificate]) -> dict[str, pa.Table]:
+def snapshot_tables(ranker: Ranker, certificates: dict[str, Certificate]) -> dict[str, pa.Table]:
     """The snapshot's tables, each sorted by name so that equal states give equal files.
 
     Rows are ordered by integer name ranks (one sort of the node ids) instead
@@ -250,9 +250,16 @@ def _tables(ranker: Ranker, certificates: dict[str, Certificate]) -> dict[str, p
     }
 
 
-def snapshot_tables(ranker: Ranker, certificates: dict[str, Certificate]) -> dict[str, pa.Table]:
-    """The three tables a snapshot of ``ranker`` holds, published with ``certificates``."""
-    return _tables(ranker, certificates)
+def parquet_filler(tables: dict[str, pa.Table]):
+    """A ``fill`` for :func:`write_prepared_snapshot`: each table as a zstd Parquet file of its name."""
+
+    def fill(folder: Path) -> None:
+        import pyarrow.parquet as pq
+
+        for fname, table in tables.items():
+            pq.write_table(table, folder / fname, compression="zstd")
+
+    return fill
 
 
 def _finite(x: float) -> float | None:
@@ -294,14 +301,12 @@ def write_snapshot(
         When the root cannot be created or written (permissions, full disk);
         no ``snap-`` folder is left behind in that case.
     """
-    import pyarrow.parquet as pq
-
     root = Path(root)
     seq = None if sequence is None else int(sequence)
     eng = ranker.engine
     eng.recompute_residual()
     certificates = eng.settle_certified()
-    tables = _tables(ranker, certificates)
+    tables = snapshot_tables(ranker, certificates)
     manifest = {
         "damping": eng.damping,
         "rtol": eng.rtol,
@@ -318,12 +323,7 @@ def write_snapshot(
             for k, name in enumerate(eng.profiles)
         },
     }
-
-    def fill(folder: Path) -> None:
-        for fname, table in tables.items():
-            pq.write_table(table, folder / fname, compression="zstd")
-
-    return write_prepared_snapshot(root, fill, manifest, seq, created_at)
+    return write_prepared_snapshot(root, parquet_filler(tables), manifest, seq, created_at)
 
 
 def write_prepared_snapshot(root: Path, fill, manifest: dict, sequence: int | None = None,
