@@ -255,7 +255,8 @@ def _per_node_lines(p: dict) -> list[str]:
         _table(headers, rows),
         f"single events: apply + settle p50 {lat['p50']:.3f} ms, p99 {lat['p99']:.3f} ms over {lat['events']} events; "
         f"backlog schedule {p['events_per_second']:,.0f} events/s; push cost "
-        f"{_fmt_num(p.get('push_ns_per_edge'), '.1f')} ns per touched edge; "
+        f"{_fmt_num(p.get('push_ns_per_edge'), '.1f')} ns per touched edge in the push kernels, "
+        f"{_fmt_num(p.get('settle_ns_per_edge'), '.1f')} ns with the settle's fixed cost; "
         + (f"{p['stream']['batch']}-event batches back to back: p50 {p['stream']['p50_ms']:.3f} ms, "
            f"p99 {p['stream']['p99_ms']:.3f} ms; " if "stream" in p else "")
         + "every node within its bound: "

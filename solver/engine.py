@@ -25,7 +25,8 @@ References
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+import time
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -108,6 +109,9 @@ class SettleStats:
     sweeps: int = 0
     sweep_edges: int = 0
     phases: int = 0
+    #: Seconds inside the per-node push kernels (the settle's fixed costs and sweeps left out);
+    #: a measurement, not work: equal stats may differ in it.
+    push_seconds: float = field(default=0.0, compare=False)
 
     @property
     def edge_touches(self) -> int:
@@ -119,6 +123,7 @@ class SettleStats:
         self.sweeps += other.sweeps
         self.sweep_edges += other.sweep_edges
         self.phases += other.phases
+        self.push_seconds += other.push_seconds
 
 
 def _reject(i: int, src: np.ndarray, dst: np.ndarray, weight: np.ndarray) -> None:
@@ -173,7 +178,9 @@ class Engine:
         self.P = np.zeros((1, cap))
         self.R = np.zeros((1, cap))
         self.S = np.zeros((1, cap))
-        self._active = np.zeros((1, cap), dtype=np.int32)
+        # the active lists and the push queue keep one spare slot: the push writes the next
+        # free slot whether or not it lists or queues a node (no branch to mispredict per edge)
+        self._active = np.zeros((1, cap + 1), dtype=np.int32)
         # per node and profile: kernels.ACTIVE (on the active list), kernels.QUEUED (in the push queue)
         self._flags = np.zeros((1, cap), dtype=np.uint8)
         self._n_active = np.zeros(1, dtype=np.int64)
@@ -186,7 +193,7 @@ class Engine:
         self.last_certificates: dict[str, Certificate] = {}
         self.set_targets(rtol, tolerance, certified_top)
         self._seed_error = np.zeros(1)  # rounding bound of seed updates to the residual, per profile
-        self._queue = np.zeros(cap, dtype=np.int32)
+        self._queue = np.zeros(cap + 1, dtype=np.int32)
         self._tmp = np.zeros(cap)
         self._spill = np.zeros((kernels.SWEEP_CHUNKS - 1, cap))  # partial sums of parallel sweeps
 
@@ -229,7 +236,7 @@ class Engine:
         self.P = np.vstack([self.P, np.zeros(cap)])
         self.R = np.vstack([self.R, np.zeros(cap)])
         self.S = np.vstack([self.S, np.zeros(cap)])
-        self._active = np.vstack([self._active, np.zeros(cap, dtype=np.int32)])
+        self._active = np.vstack([self._active, np.zeros(cap + 1, dtype=np.int32)])
         self._flags = np.vstack([self._flags, np.zeros(cap, dtype=np.uint8)])
         self._n_active = np.append(self._n_active, 0)
         self._parked = np.append(self._parked, 0.0)
@@ -259,14 +266,14 @@ class Engine:
             self._n_active[0] += fresh.size
 
     def _grow_node_arrays(self, cap: int) -> None:
-        def grow(arr: np.ndarray) -> np.ndarray:
-            out = np.zeros((arr.shape[0], cap), dtype=arr.dtype)
+        def grow(arr: np.ndarray, spare: int = 0) -> np.ndarray:
+            out = np.zeros((arr.shape[0], cap + spare), dtype=arr.dtype)
             out[:, : arr.shape[1]] = arr
             return out
 
         self.P, self.R, self.S = grow(self.P), grow(self.R), grow(self.S)
-        self._active, self._flags = grow(self._active), grow(self._flags)
-        self._queue = np.zeros(cap, dtype=np.int32)
+        self._active, self._flags = grow(self._active, spare=1), grow(self._flags)
+        self._queue = np.zeros(cap + 1, dtype=np.int32)
         self._tmp = np.zeros(cap)
         self._spill = np.zeros((kernels.SWEEP_CHUNKS - 1, cap))
 
@@ -426,18 +433,21 @@ class Engine:
         g = self.graph.arrays
         stats = np.zeros(5, dtype=np.int64)
         edge_limit = self._edge_limit()
-        beta = self._global_limit(0.0)  # the top rung: delta is usually tiny
+        beta = self._weights[0].beta  # where the last settle ended: the kernel starts near it
+        push_seconds = 0.0
         for _ in range(1_000):
+            started = time.perf_counter()
             handover, beta = kernels.push_global(
                 self.n_nodes, self.n_edges, g.start, g.out_weight, g.out_degree, g.dst, g.weight,
                 self.P, self.R, self.S, self.teleport, self.damping,
                 self._active, self._n_active, self._flags, self._parked, self._parked_max, self._queue,
                 edge_limit, stats, self._psum, self.graph.unit_weights, self.rtol, THRESHOLD_MARGIN, beta,
             )
+            push_seconds += time.perf_counter() - started
             if not handover or self._sweep_to_thresholds(0, Weights(0.0, beta), edge_limit, stats) == SWEEPS_STALLED:
                 break
         self._weights[0] = Weights(0.0, beta)
-        return SettleStats(*(int(x) for x in stats))
+        return SettleStats(*(int(x) for x in stats), push_seconds=push_seconds)
 
     def _edge_limit(self) -> float:
         """Edges a per-node push may touch before it hands over to global sweeps."""
@@ -533,16 +543,19 @@ class Engine:
             self._parked_max[k] = 0.0
         edge_limit = self._edge_limit()
         unit = self.graph.unit_weights
+        push_seconds = 0.0
         for _ in range(1_000):
+            started = time.perf_counter()
             handover = kernels.push_to_thresholds(
                 k, n, self.n_edges, g.start, g.out_weight, g.out_degree, g.dst, g.weight,
                 self.P, self.R, self.S, weights.alpha, weights.beta, self.teleport, self.damping,
                 self._active, self._n_active, self._flags, self._parked,
                 self._queue, edge_limit, stats, self._psum, unit,
             )
+            push_seconds += time.perf_counter() - started
             if not handover or self._sweep_to_thresholds(k, weights, edge_limit, stats) != SWEEPS_PUSH_ON:
                 break
-        return SettleStats(*(int(x) for x in stats))
+        return SettleStats(*(int(x) for x in stats), push_seconds=push_seconds)
 
     def _sweep_to_thresholds(self, k: int, weights: Weights, edge_limit: float, stats: np.ndarray) -> int:
         """Global sweeps until pushes can finish.

@@ -199,3 +199,35 @@ def test_top_and_score_show_bounds_and_rank_ranges_that_hold(tmp_path) -> None:
     score = json.loads(subprocess.run([*cli, "score", str(tmp_path / "snaps"), node, "--json"],
                                       capture_output=True, text=True, check=True).stdout)
     assert score["nodes"][0]["error_bound"] == top["nodes"][0]["error_bound"]
+
+
+@pytest.mark.parametrize("profiles", [0, 1])
+def test_a_push_that_lists_and_queues_every_node_of_a_full_capacity(profiles: int) -> None:
+    """The push writes the next free slot of the active list and of the queue
+    for every edge (no branch); with every node of a full node capacity listed
+    and queued, that slot must still be a spare one, here too after the arrays
+    grew and a personalization was added. Reference: NetworkX ``pagerank`` of
+    the complete digraph with self-loops, weighted (uniform scores would hide a
+    lost push)."""
+    from ranktide.solver import OP_INSERT, OP_SEED, Engine
+
+    cap = 64
+    engine = Engine(node_capacity=cap // 2, edge_capacity=16)
+    rng = np.random.default_rng(5)
+    src, dst = (a.ravel().astype(np.int32) for a in np.meshgrid(np.arange(cap), np.arange(cap), indexing="ij"))
+    weight = rng.uniform(0.5, 2.0, src.size)
+    engine.apply(np.full(src.size, OP_INSERT, np.int8), src, dst, weight)
+    if profiles:
+        engine.add_profile("p")
+        engine.apply(np.full(cap, OP_SEED, np.int8), np.arange(cap, dtype=np.int32), np.full(cap, 1), np.ones(cap))
+    assert engine.graph.node_capacity == engine.n_nodes == cap
+    assert engine._queue.size > cap and engine._active.shape[1] > cap
+    engine.settle()
+    g = nx.DiGraph()
+    g.add_weighted_edges_from(zip(src.tolist(), dst.tolist(), weight.tolist()))
+    for profile in engine.profiles:
+        reference = nx.pagerank(g, alpha=engine.damping, tol=1e-14, max_iter=10_000, weight="weight")
+        exact = np.array([reference[v] for v in range(cap)])
+        cert = engine.certificate(profile)
+        assert np.all(np.abs(cert.scores - exact) <= cert.bounds + ROUNDING), profile
+        assert cert.meets(RTOL), profile
