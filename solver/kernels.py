@@ -751,6 +751,11 @@ def settle_profile(
                 flags[k, queue[j]] &= ~QUEUED
             sweeping = True
             continue
+        Rk = R[k]
+        fk = flags[k]
+        ak = active[k]
+        listed = n_active[k]
+        unparked = 0.0
         while pending > 0 and not _done(rho, s_p, abs_p, tol):
             u = queue[qh]
             qh += 1
@@ -773,21 +778,30 @@ def settle_profile(
             if W <= 0.0:
                 continue
             scale = d * ru / W
-            for e in range(start[u], start[u] + out_degree[u]):
+            first = start[u]
+            degree = out_degree[u]
+            for e in range(first, first + degree):
+                # branch-free listing and queueing, as in push_to_thresholds
                 v = e_dst[e]
-                _mark(k, v, R, active, n_active, flags, parked)
-                before = R[k, v]
+                f = fk[v]
+                before = Rk[v]
+                fresh = 1 - (f & ACTIVE)
+                unparked += abs(before) * fresh
+                ak[listed] = v
+                listed += fresh
                 after = before + scale * e_w[e]
-                R[k, v] = after
+                Rk[v] = after
                 rho += abs(after) - abs(before)
-                if not (flags[k, v] & QUEUED) and abs(after) > theta * max(out_degree[v], 1):
-                    flags[k, v] |= QUEUED
-                    queue[qt] = v
-                    qt += 1
-                    if qt == cap:
-                        qt = 0
-                    pending += 1
-                stats[1] += 1
+                due = (abs(after) > theta * max(out_degree[v], 1)) & ((f & QUEUED) == 0)
+                queue[qt] = v
+                qt += due
+                if qt == cap:
+                    qt = 0
+                pending += due
+                fk[v] = f | ACTIVE | (QUEUED * due)
+            stats[1] += degree
+        n_active[k] = listed
+        parked[k] -= unparked
         _unqueue_rest(flags, k, queue, qh, pending)
         theta *= theta_step
         stats[4] += 1
