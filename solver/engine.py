@@ -70,9 +70,12 @@ PARK_SHARE = 0.25
 RTOL = 1e-3
 
 #: Pushes of a per-node settle hand over to global sweeps once they have touched this
-#: share of the edges (a pushed edge costs about 30 times a swept one), and at least
-#: :data:`PUSH_EDGE_FLOOR` edges (on small graphs a sweep saves nothing).
-PUSH_EDGE_SHARE = 0.1
+#: share of the edges, and at least :data:`PUSH_EDGE_FLOOR` edges (on small graphs a
+#: sweep saves nothing). A pushed edge costs about 7 times a swept one with the sweep's
+#: scans counted (35 against 5 ns at medium), so the pushes a hand-over can cut short
+#: cost about two sweeps; at 0.1 the pushes of 100 to 1,000 events, often nearly
+#: done, were cut short for sweeps that took longer (DEVELOPERS.md).
+PUSH_EDGE_SHARE = 0.3
 PUSH_EDGE_FLOOR = 50_000
 
 #: Safety factor on the per-node thresholds: the running residual carries rounding
