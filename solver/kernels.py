@@ -669,6 +669,40 @@ def relist_active(k, R, n, active, n_active, flags, parked):
 
 
 @njit(cache=True, inline="always")
+def _add_to_residual(v, add, Rk, fk, ak, listed, unparked):
+    """``r(v) += add``, listing ``v`` first if it is not on the active list: :func:`_mark` without a branch.
+
+    ``v`` is written to the next free slot of the list ``ak`` every time and
+    the list grows by 0 or 1 (the list keeps one spare slot for it).
+    Returns ``(r(v) before, r(v) after, v's flag byte before, listed, unparked)``.
+    """
+    f = fk[v]
+    before = Rk[v]
+    fresh = 1 - (f & ACTIVE)
+    unparked += abs(before) * fresh
+    ak[listed] = v
+    listed += fresh
+    after = before + add
+    Rk[v] = after
+    return before, after, f, listed, unparked
+
+
+@njit(cache=True, inline="always")
+def _enqueue_if(v, due, f, fk, queue, qt, pending):
+    """Append ``v`` to the ring buffer if ``due``, without a branch; mark it listed (and queued if due).
+
+    The slot at ``qt`` is written every time (the buffer keeps one spare
+    slot); the tail moves on by 0 or 1. Returns ``(qt, pending)``.
+    """
+    queue[qt] = v
+    qt += due
+    if qt == queue.shape[0]:
+        qt = 0
+    fk[v] = f | ACTIVE | (QUEUED * due)
+    return qt, pending + due
+
+
+@njit(cache=True, inline="always")
 def _unqueue_rest(flags, k, queue, qh, pending):
     """Clear the QUEUED bit of the ``pending`` nodes left in the ring buffer from ``qh`` on."""
     cap = queue.shape[0]
@@ -781,24 +815,11 @@ def settle_profile(
             first = start[u]
             degree = out_degree[u]
             for e in range(first, first + degree):
-                # branch-free listing and queueing, as in push_to_thresholds
                 v = e_dst[e]
-                f = fk[v]
-                before = Rk[v]
-                fresh = 1 - (f & ACTIVE)
-                unparked += abs(before) * fresh
-                ak[listed] = v
-                listed += fresh
-                after = before + scale * e_w[e]
-                Rk[v] = after
+                before, after, f, listed, unparked = _add_to_residual(v, scale * e_w[e], Rk, fk, ak, listed, unparked)
                 rho += abs(after) - abs(before)
                 due = (abs(after) > theta * max(out_degree[v], 1)) & ((f & QUEUED) == 0)
-                queue[qt] = v
-                qt += due
-                if qt == cap:
-                    qt = 0
-                pending += due
-                fk[v] = f | ACTIVE | (QUEUED * due)
+                qt, pending = _enqueue_if(v, due, f, fk, queue, qt, pending)
             stats[1] += degree
         n_active[k] = listed
         parked[k] -= unparked
@@ -1003,22 +1024,10 @@ def push_to_thresholds(
         degree = out_degree[u]
         for e in range(first, first + degree):
             v = e_dst[e]
-            f = fk[v]
-            r = Rk[v]
-            # what _mark does, with the list length and parked mass kept in locals
-            fresh = 1 - (f & ACTIVE)
-            unparked += abs(r) * fresh
-            ak[listed] = v
-            listed += fresh
-            after = r + (scale if unit else scale * e_w[e])
-            Rk[v] = after
+            _, after, f, listed, unparked = _add_to_residual(v, scale if unit else scale * e_w[e], Rk, fk, ak,
+                                                             listed, unparked)
             due = (abs(after) > (beta if uniform else _threshold(S, k, v, alpha, beta))) & ((f & QUEUED) == 0)
-            queue[qt] = v
-            qt += due
-            if qt == cap:
-                qt = 0
-            pending += due
-            fk[v] = f | ACTIVE | (QUEUED * due)
+            qt, pending = _enqueue_if(v, due, f, fk, queue, qt, pending)
         touched += degree
         if touched > edge_limit:
             handover = True
