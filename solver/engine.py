@@ -181,9 +181,8 @@ class Engine:
         self.P = np.zeros((1, cap))
         self.R = np.zeros((1, cap))
         self.S = np.zeros((1, cap))
-        # the active lists and the push queue keep one spare slot: the push writes the next
-        # free slot whether or not it lists or queues a node (no branch to mispredict per edge)
-        self._active = np.zeros((1, cap + 1), dtype=np.int32)
+        # the active lists and the push queue keep kernels.SPARE_SLOTS beyond the capacity
+        self._active = np.zeros((1, cap + kernels.SPARE_SLOTS), dtype=np.int32)
         # per node and profile: kernels.ACTIVE (on the active list), kernels.QUEUED (in the push queue)
         self._flags = np.zeros((1, cap), dtype=np.uint8)
         self._n_active = np.zeros(1, dtype=np.int64)
@@ -196,7 +195,7 @@ class Engine:
         self.last_certificates: dict[str, Certificate] = {}
         self.set_targets(rtol, tolerance, certified_top)
         self._seed_error = np.zeros(1)  # rounding bound of seed updates to the residual, per profile
-        self._queue = np.zeros(cap + 1, dtype=np.int32)
+        self._queue = np.zeros(cap + kernels.SPARE_SLOTS, dtype=np.int32)
         self._tmp = np.zeros(cap)
         self._spill = np.zeros((kernels.SWEEP_CHUNKS - 1, cap))  # partial sums of parallel sweeps
 
@@ -239,7 +238,7 @@ class Engine:
         self.P = np.vstack([self.P, np.zeros(cap)])
         self.R = np.vstack([self.R, np.zeros(cap)])
         self.S = np.vstack([self.S, np.zeros(cap)])
-        self._active = np.vstack([self._active, np.zeros(cap + 1, dtype=np.int32)])
+        self._active = np.vstack([self._active, np.zeros(cap + kernels.SPARE_SLOTS, dtype=np.int32)])
         self._flags = np.vstack([self._flags, np.zeros(cap, dtype=np.uint8)])
         self._n_active = np.append(self._n_active, 0)
         self._parked = np.append(self._parked, 0.0)
@@ -275,8 +274,8 @@ class Engine:
             return out
 
         self.P, self.R, self.S = grow(self.P), grow(self.R), grow(self.S)
-        self._active, self._flags = grow(self._active, spare=1), grow(self._flags)
-        self._queue = np.zeros(cap + 1, dtype=np.int32)
+        self._active, self._flags = grow(self._active, spare=kernels.SPARE_SLOTS), grow(self._flags)
+        self._queue = np.zeros(cap + kernels.SPARE_SLOTS, dtype=np.int32)
         self._tmp = np.zeros(cap)
         self._spill = np.zeros((kernels.SWEEP_CHUNKS - 1, cap))
 

@@ -59,6 +59,11 @@ LOCAL_REPAIR_MAX_DEGREE = 24
 #: a pushed edge reads one byte of state besides the residual.
 ACTIVE = np.uint8(1)
 QUEUED = np.uint8(2)
+#: Slots that the active lists and the push queue keep beyond the node capacity: the
+#: pushes write the next free slot of both for every edge, whether or not the node
+#: joins (:func:`_add_to_residual`, :func:`_enqueue_if`), and a queue holding every
+#: node never fills its ring buffer.
+SPARE_SLOTS = 1
 #: How many queued nodes ahead a push prefetches the node records, and (half as
 #: far) the out-edge block.
 PREFETCH_AHEAD = 4
@@ -673,7 +678,7 @@ def _add_to_residual(v, add, Rk, fk, ak, listed, unparked):
     """``r(v) += add``, listing ``v`` first if it is not on the active list: :func:`_mark` without a branch.
 
     ``v`` is written to the next free slot of the list ``ak`` every time and
-    the list grows by 0 or 1 (the list keeps one spare slot for it).
+    the list grows by 0 or 1 (the list keeps :data:`SPARE_SLOTS` for it).
     Returns ``(r(v) before, r(v) after, v's flag byte before, listed, unparked)``.
     """
     f = fk[v]
@@ -691,8 +696,8 @@ def _add_to_residual(v, add, Rk, fk, ak, listed, unparked):
 def _enqueue_if(v, due, f, fk, queue, qt, pending):
     """Append ``v`` to the ring buffer if ``due``, without a branch; mark it listed (and queued if due).
 
-    The slot at ``qt`` is written every time (the buffer keeps one spare
-    slot); the tail moves on by 0 or 1. Returns ``(qt, pending)``.
+    The slot at ``qt`` is written every time (the buffer keeps
+    :data:`SPARE_SLOTS`); the tail moves on by 0 or 1. Returns ``(qt, pending)``.
     """
     queue[qt] = v
     qt += due
@@ -777,9 +782,7 @@ def settle_profile(
                 queue[qt] = u
                 qt += 1
                 frontier += out_degree[u]
-        pending = qt
-        if qt == cap:
-            qt = 0  # every node is due: the ring buffer is full and its tail wraps
+        pending = qt  # at most every node: the buffer's spare slot keeps qt below its end
         if frontier > sweep_share * m:
             for j in range(pending):
                 flags[k, queue[j]] &= ~QUEUED
@@ -991,9 +994,7 @@ def push_to_thresholds(
     frontier = 0
     for i in range(qt):
         frontier += out_degree[queue[i]]
-    pending = qt
-    if qt == cap:
-        qt = 0
+    pending = qt  # at most every node: the buffer's spare slot keeps qt below its end
     qh = 0
     touched = 0
     pushes = 0
@@ -1092,10 +1093,11 @@ def push_global(
     returned ``beta``.
     """
     top = global_limit(0.0, rtol, margin)
-    # start at the largest rung the sum shift allows now, or at the last settle's rung if
-    # that is higher (pushes never raise ||r||_1, so the allowance grows as they go): a
-    # settle after a few events is then one pass, not a pass at the top rung, which any
-    # residual fails, and a second one below it
+    # start at the largest rung the sum shift allows now (ladder_rung with a current rung
+    # of 2 top, which caps nothing), or at the last settle's rung if that is higher
+    # (pushes never raise ||r||_1, so the allowance grows as they go): a settle after a
+    # few events is then one pass, not a pass at the top rung, which any residual fails,
+    # and a second one below it
     limit = global_limit(sum_shift(0, R, active, n_active, parked, psum), rtol, margin)
     beta = min(max(ladder_rung(limit, 2.0 * top, top), beta), top)
     for _ in range(64):
