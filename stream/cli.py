@@ -610,13 +610,44 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv: list[str] | None = None) -> int:
     """Run the command line; ``argv`` defaults to the program's arguments.
 
-    Run as the program (no ``argv``), a finished ``replay`` ends the process
-    at once (:func:`_exit_now`).
+    Run as the program (no ``argv``), pyarrow is kept from importing pandas
+    (:func:`_hide_pandas`) and a finished ``replay`` ends the process at once
+    (:func:`_exit_now`).
     """
-    code, command = _main(sys.argv[1:] if argv is None else argv)
+    code, command = _main(sys.argv[1:] if argv is None else argv, as_program=argv is None)
     if argv is None and command == "replay":
         _exit_now(code)
     return code
+
+
+#: Commands whose work may go through pandas: pyspark converts through it.
+_PANDAS_COMMANDS = frozenset({"recompute", "bench"})
+
+
+def _hide_pandas(command: str) -> None:
+    """Let pyarrow see no pandas in a process that will never hand it a pandas object.
+
+    pyarrow imports pandas, when installed, the first time it converts a Python
+    or NumPy object (to check whether it is a Series): 0.3 s of start-up that
+    no ``ranktide`` command but those of :data:`_PANDAS_COMMANDS` has any use
+    for. Only done when ``ranktide`` runs as the program, so that a caller's
+    own process keeps its pandas.
+    """
+    if command not in _PANDAS_COMMANDS and "pandas" not in sys.modules:
+        sys.meta_path.insert(0, _NoPandas())
+
+
+class _NoPandas:
+    """An import finder under which ``import pandas`` fails as if pandas were not installed.
+
+    (Marking it None in ``sys.modules`` does not do: pyarrow's compiled import
+    takes the None for the module.)
+    """
+
+    def find_spec(self, name: str, path=None, target=None):  # noqa: D102 - importlib's finder hook
+        if name == "pandas" or name.startswith("pandas."):
+            raise ModuleNotFoundError(f"No module named {name!r} (not used by this ranktide command)", name=name)
+        return None
 
 
 def _exit_now(code: int) -> None:
@@ -636,8 +667,8 @@ def _exit_now(code: int) -> None:
     os._exit(code)
 
 
-def _main(argv: list[str]) -> tuple[int, str]:
-    """The exit code of the command ``argv`` names, and that command."""
+def _main(argv: list[str], as_program: bool = False) -> tuple[int, str]:
+    """The exit code of the command ``argv`` names, and that command (``as_program``: see :func:`main`)."""
     if argv[:1] == ["broker"]:
         # everything after 'broker' belongs to the broker's own parser, --help included
         from ranktide.stream import broker
@@ -645,6 +676,8 @@ def _main(argv: list[str]) -> tuple[int, str]:
         return broker.main(argv[1:], prog="ranktide broker"), "broker"
     parser = build_parser()
     args = parser.parse_args(argv)
+    if as_program:
+        _hide_pandas(args.command)
     logging.basicConfig(level=getattr(logging, args.log_level),
                         format="%(asctime)s %(levelname)s %(name)s: %(message)s")
     try:

@@ -134,6 +134,32 @@ def test_replay_applies_a_last_record_without_newline(tmp_path: Path) -> None:
     assert _manifest(newest_snapshot(tmp_path / "snaps"))["events_applied"] == len(EVENTS)
 
 
+def test_the_replay_command_does_not_import_pandas_but_a_callers_process_keeps_it(tmp_path: Path) -> None:
+    """pyarrow imports pandas on its first conversion when pandas is installed (0.3 s of a replay's start).
+
+    The program hides it; ``main(argv)`` in a caller's process does not. Import
+    record: Python's own ``PYTHONPROFILEIMPORTTIME`` (``-X importtime``).
+    """
+    pytest.importorskip("pandas")  # installed by the test extras: the case worth checking
+    log = tmp_path / "events.jsonl"
+    log.write_bytes(_lines(EVENTS))
+    done = _run("replay", str(log), "--out", str(tmp_path / "snaps"), "--quiet",
+                env={**os.environ, "PYTHONPROFILEIMPORTTIME": "1"})
+    assert done.returncode == 0, done.stderr[-3000:]
+    imported = {ln.rsplit("|", 1)[-1].strip() for ln in done.stderr.splitlines() if ln.startswith("import time:")}
+    assert "pyarrow" in imported and "numba" in imported  # the record is there
+    # a refused 'import pandas' leaves a line of its own too; a real one loads pandas' submodules
+    assert not {m for m in imported if m.startswith("pandas.")}
+    assert _global_scores(newest_snapshot(tmp_path / "snaps")) == pytest.approx(_networkx_scores(EVENTS), abs=1e-3)
+
+    code = subprocess.run([sys.executable, "-c", (
+        "import sys; from ranktide.stream.cli import main\n"
+        f"assert main(['replay', {str(log)!r}, '--out', {str(tmp_path / 'again')!r}, '--quiet']) == 0\n"
+        "import pandas, pyarrow as pa\n"
+        "print(pa.array(pandas.Series([1.5])).type)")], capture_output=True, text=True, timeout=120)
+    assert code.returncode == 0 and code.stdout.strip() == "double", code.stderr[-3000:]
+
+
 # ---------------------------------------------------------------- item 4: outputs, options, exit codes
 
 
