@@ -285,41 +285,56 @@ def _timed_chunks(chunks: Iterator[LogChunk], timings: Timings) -> Iterator[LogC
         yield chunk
 
 
-def _prefetched(chunks: Iterator[LogChunk], timings: Timings, depth: int = 2) -> Iterator[LogChunk]:
-    """The chunks in order, read and parsed up to ``depth`` ahead by a worker thread.
+class _Prefetched:
+    """The chunks in order, read and parsed up to ``depth`` ahead by a worker thread started at once.
 
     Arrow's JSON reader and the compiled kernels release the interpreter lock,
-    so parsing the next chunks overlaps applying this one (and loading the
-    kernels at the start). An error of the reader is raised here, where the
-    chunk it broke would have come; leaving early stops the worker.
+    so parsing the next chunks overlaps applying this one, and the first ones
+    overlap building the engine and loading the kernels, as the worker starts
+    when this object is made, not when the first chunk is asked for. An error
+    of the reader is raised where the chunk it broke would have come.
+    :meth:`close` stops the worker (leaving early, or on an error elsewhere).
     """
-    ready: queue.Queue = queue.Queue(maxsize=depth)
-    stop = threading.Event()
-    worker = threading.Thread(target=_produce, args=(_timed_chunks(chunks, timings), ready, stop),
-                              name="replay-reader", daemon=True)
-    worker.start()
-    try:
-        while True:
-            started = time.perf_counter()
-            kind, item = ready.get()
-            timings.waiting += time.perf_counter() - started
-            if kind == "error":
-                raise item
-            if kind == "end":
-                return
-            yield item
-    finally:
-        stop.set()
-        while worker.is_alive():  # free a worker blocked on a full queue
+
+    def __init__(self, chunks: Iterator[LogChunk], timings: Timings, depth: int = 2) -> None:
+        self._ready: queue.Queue = queue.Queue(maxsize=depth)
+        self._stop = threading.Event()
+        self._timings = timings
+        self._done = False
+        self._worker = threading.Thread(target=_produce, args=(_timed_chunks(chunks, timings), self._ready, self._stop),
+                                        name="replay-reader", daemon=True)
+        self._worker.start()
+
+    def __iter__(self) -> "_Prefetched":
+        return self
+
+    def __next__(self) -> LogChunk:
+        if self._done:
+            raise StopIteration
+        started = time.perf_counter()
+        kind, item = self._ready.get()
+        self._timings.waiting += time.perf_counter() - started
+        if kind == "chunk":
+            return item
+        self.close()
+        if kind == "error":
+            raise item
+        raise StopIteration
+
+    def close(self) -> None:
+        """Stop the worker and wait for it (idempotent)."""
+        self._done = True
+        self._stop.set()
+        while self._worker.is_alive():  # free a worker blocked on a full queue
             try:
-                ready.get(timeout=0.05)
+                self._ready.get(timeout=0.05)
             except queue.Empty:
                 pass
-        worker.join()
+        self._worker.join()
 
 
 def _produce(chunks: Iterator[LogChunk], ready: queue.Queue, stop: threading.Event) -> None:
-    """Worker of :func:`_prefetched`: put ("chunk", c) items, then ("end", None) or ("error", exc)."""
+    """Worker of :class:`_Prefetched`: put ("chunk", c) items, then ("end", None) or ("error", exc)."""
     try:
         for chunk in chunks:
             ready.put(("chunk", chunk))
@@ -360,10 +375,25 @@ class _Replay:
         self.log, self.out, self.options = Path(log), Path(out), options
         self.key = str(self.log.resolve())
         self.rejects = RejectsWriter(self.out / "rejects.jsonl", str(self.log))
-        self.ranker, self.counters, self.offset, self.line, self.skip = self._start()
         self.written: list[Path] = []
         self.timings = Timings()
         self.started_wall = time.monotonic()
+        self.chunks: _Prefetched | None = None
+        if options.from_snapshot is None:  # read from the log's start: parse while the engine is set up
+            self.chunks = self._read(0, 0)
+        try:
+            self.ranker, self.counters, self.offset, self.line, self.skip = self._start()
+        except BaseException:
+            self.close()
+            raise
+
+    def _read(self, offset: int, line: int) -> _Prefetched:
+        return _Prefetched(read_log(self.log, self.options.limits, offset, line + 1), self.timings)
+
+    def close(self) -> None:
+        """Stop the reader thread, if one is running."""
+        if self.chunks is not None:
+            self.chunks.close()
 
     def _start(self):
         if self.options.from_snapshot is None:
@@ -400,15 +430,16 @@ class _Replay:
         if rows:
             engine = self.ranker.engine
             engine.ensure_nodes(engine.n_nodes, max(rows - self.offset, 0))
-        chunks = _prefetched(read_log(self.log, opts.limits, self.offset, self.line + 1), self.timings)
+        if self.chunks is None:
+            self.chunks = self._read(self.offset, self.line)
         _load_kernels()  # while the reader thread parses the first chunks
         try:
-            for chunk in chunks:
+            for chunk in self.chunks:
                 if self._chunk(self._drop_covered(chunk), plan):
                     return
                 self._show(bar, chunk)
         finally:
-            chunks.close()  # stops the reader thread when leaving early
+            self.close()  # stops the reader thread when leaving early
 
     def _chunk(self, chunk: LogChunk, plan: "_Plan") -> bool:
         """Apply one chunk segment by segment; True when --until stops the replay in it."""
@@ -511,10 +542,12 @@ def replay_log(log: Path, out: Path, options: ReplayOptions = ReplayOptions()) -
             options = replace(options, from_snapshot=select_snapshot(options.from_snapshot).path)
         check_root(out, options.from_snapshot)
         state = _Replay(log, out, options)
-        bar = _progress(Path(log), options.progress)
+        bar = None
         try:
+            bar = _progress(Path(log), options.progress)
             state.run(bar)
         finally:
+            state.close()
             state.rejects.close()
             if bar is not None:
                 bar.close()

@@ -21,7 +21,7 @@ import numpy as np
 import pyarrow.parquet as pq
 import pytest
 
-from ranktide.replay.replay import ReplayOptions, Timings, _prefetched, replay_log
+from ranktide.replay.replay import ReplayOptions, Timings, _Prefetched, replay_log
 from ranktide.stream.events import OPS
 from ranktide.stream.logs import LogError, read_log
 
@@ -138,10 +138,36 @@ def test_the_reader_thread_stops_when_the_consumer_leaves_early() -> None:
             yield i
             i += 1
 
-    chunks = _prefetched(endless(), Timings(), depth=2)
+    chunks = _Prefetched(endless(), Timings(), depth=2)
     got = [next(chunks) for _ in range(5)]
     chunks.close()
     assert got == [0, 1, 2, 3, 4]
+    assert not _readers()
+
+
+def test_the_reader_thread_parses_before_the_first_chunk_is_asked_for() -> None:
+    """The first chunks are parsed while the replay builds its engine and loads its kernels."""
+    pulled = threading.Event()
+
+    def source():
+        pulled.set()
+        yield "first"
+
+    chunks = _Prefetched(source(), Timings())
+    try:
+        assert pulled.wait(timeout=30), "the reader did not start until asked for a chunk"
+        assert list(chunks) == ["first"]
+    finally:
+        chunks.close()
+    assert not _readers()
+
+
+def test_a_replay_whose_set_up_fails_leaves_no_reader_thread(tmp_path: Path) -> None:
+    path = tmp_path / "events.jsonl"
+    path.write_bytes(b'{"op":"insert","src":"a","dst":"b"}\n' * 700_000)  # 25 MiB: more chunks than the queue holds
+    missing = ReplayOptions(personalizations={"trusted": tmp_path / "no-such-seeds.txt"})
+    with pytest.raises(LogError, match="no-such-seeds"):
+        replay_log(path, tmp_path / "root", missing)
     assert not _readers()
 
 
@@ -150,7 +176,7 @@ def test_a_reader_error_is_raised_where_its_chunk_would_have_come() -> None:
         yield "first"
         raise LogError("events.jsonl: cannot read: disk on fire")
 
-    chunks = _prefetched(broken(), Timings())
+    chunks = _Prefetched(broken(), Timings())
     assert next(chunks) == "first"
     with pytest.raises(LogError, match="disk on fire"):
         next(chunks)
