@@ -205,14 +205,20 @@ def snapshot_tables(ranker: Ranker, certificates: dict[str, Certificate]) -> dic
     of sorting the string columns: the same order as sorting by the strings,
     at a fraction of the cost on millions of edges.
     """
+    names = ranker.node_names()
+    ranks = _name_ranks(names)
+    return {**profile_tables(ranker, certificates, names, ranks), "edges.parquet": edge_table(ranker, names, ranks)}
+
+
+def profile_tables(ranker: Ranker, certificates: dict[str, Certificate], names: pa.Array,
+                   ranks: np.ndarray) -> dict[str, pa.Table]:
+    """``scores.parquet`` and ``seeds.parquet`` of :func:`snapshot_tables` (``ranks``: :func:`_name_ranks`)."""
     import numpy as np
     import pyarrow as pa
 
     from ranktide.solver import GLOBAL
 
     eng = ranker.engine
-    names = ranker.node_names()
-    ranks = _name_ranks(names)
     n = eng.n_nodes
     score_parts, seed_parts = [], []
     for name in sorted(eng.profiles):
@@ -234,32 +240,57 @@ def snapshot_tables(ranker: Ranker, certificates: dict[str, Certificate]) -> dic
                 "node": names.take(pa.array(seeded)),
                 "weight": pa.array(s[seeded], pa.float64()),
             }))
-    src, dst, w = eng.graph.edge_list()
-    order = _edge_order(src, dst, ranks)
-    edges = pa.table({
-        "src": names.take(pa.array(src[order])),
-        "dst": names.take(pa.array(dst[order])),
-        "weight": pa.array(w[order], pa.float64()),
-    })
     empty_seeds = pa.table({"profile": pa.array([], pa.string()), "node": pa.array([], pa.string()),
                             "weight": pa.array([], pa.float64())})
     return {
         "scores.parquet": pa.concat_tables(score_parts),
-        "edges.parquet": edges,
         "seeds.parquet": pa.concat_tables(seed_parts) if seed_parts else empty_seeds,
     }
 
 
-def parquet_filler(tables: dict[str, pa.Table]):
-    """A ``fill`` for :func:`write_prepared_snapshot`: each table as a zstd Parquet file of its name."""
+def edge_table(ranker: Ranker, names: pa.Array, ranks: np.ndarray) -> pa.Table:
+    """``edges.parquet`` of :func:`snapshot_tables`: every edge by (source name, target name)."""
+    import pyarrow as pa
+
+    src, dst, w = ranker.engine.graph.edge_list()
+    order = _edge_order(src, dst, ranks)
+    return pa.table({
+        "src": names.take(pa.array(src[order])),
+        "dst": names.take(pa.array(dst[order])),
+        "weight": pa.array(w[order], pa.float64()),
+    })
+
+
+def parquet_filler(tables: dict[str, pa.Table], encoded: dict[str, bytes] | None = None):
+    """A ``fill`` for :func:`write_prepared_snapshot`: each table as a zstd Parquet file of its name.
+
+    ``encoded`` holds files already encoded (:func:`_parquet_bytes`), written as they are.
+    """
 
     def fill(folder: Path) -> None:
         import pyarrow.parquet as pq
 
         for fname, table in tables.items():
             pq.write_table(table, folder / fname, compression="zstd")
+        for fname, data in (encoded or {}).items():
+            with open(folder / fname, "wb") as fh:
+                fh.write(data)
 
     return fill
+
+
+def _parquet_bytes(table: pa.Table):
+    """``table`` as the bytes of a zstd Parquet file (what :func:`parquet_filler` would write)."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    sink = pa.BufferOutputStream()
+    pq.write_table(table, sink, compression="zstd")
+    return sink.getvalue()
+
+
+def _encoded_edges(ranker: Ranker, names: pa.Array, ranks: np.ndarray):
+    return _parquet_bytes(edge_table(ranker, names, ranks))
 
 
 def _finite(x: float) -> float | None:
@@ -301,12 +332,22 @@ def write_snapshot(
         When the root cannot be created or written (permissions, full disk);
         no ``snap-`` folder is left behind in that case.
     """
+    from concurrent.futures import ThreadPoolExecutor
+
     root = Path(root)
     seq = None if sequence is None else int(sequence)
     eng = ranker.engine
-    eng.recompute_residual()
-    certificates = eng.settle_certified()
-    tables = snapshot_tables(ranker, certificates)
+    names = ranker.node_names()
+    ranks = _name_ranks(names)
+    # The edges file does not depend on the scores: it is sorted and encoded in a
+    # second thread while this one settles (the kernels, sorts and Parquet
+    # encoder release the interpreter lock).
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="snapshot-edges") as pool:
+        edges = pool.submit(_encoded_edges, ranker, names, ranks)
+        eng.recompute_residual()
+        certificates = eng.settle_certified()
+        tables = profile_tables(ranker, certificates, names, ranks)
+        encoded = {"edges.parquet": edges.result()}
     manifest = {
         "damping": eng.damping,
         "rtol": eng.rtol,
@@ -323,7 +364,7 @@ def write_snapshot(
             for k, name in enumerate(eng.profiles)
         },
     }
-    return write_prepared_snapshot(root, parquet_filler(tables), manifest, seq, created_at)
+    return write_prepared_snapshot(root, parquet_filler(tables, encoded), manifest, seq, created_at)
 
 
 def write_prepared_snapshot(root: Path, fill, manifest: dict, sequence: int | None = None,
