@@ -928,7 +928,7 @@ def _prefetch_ahead(queue, qh, pending, start, out_weight, out_degree, e_dst, e_
     block of the one half as far, and the residual and flag byte of every
     out-neighbour of the next one (its block was prefetched two nodes ago): a
     push's random reads then overlap the work on the node before. Adding the
-    estimate and the flag byte to the record made pushes 12-24 % faster
+    estimate and the flag byte to the record made pushes 12-25 % faster
     (DEVELOPERS.md, "The per-node contract").
     """
     cap = queue.shape[0]

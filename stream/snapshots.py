@@ -261,7 +261,7 @@ def edge_table(ranker: Ranker, names: pa.Array, ranks: np.ndarray) -> pa.Table:
     })
 
 
-def parquet_filler(tables: dict[str, pa.Table], encoded: dict[str, bytes] | None = None):
+def parquet_filler(tables: dict[str, pa.Table], encoded: dict[str, pa.Buffer] | None = None):
     """A ``fill`` for :func:`write_prepared_snapshot`: each table as a zstd Parquet file of its name.
 
     ``encoded`` holds files already encoded (:func:`_parquet_bytes`), written as they are.
@@ -279,7 +279,7 @@ def parquet_filler(tables: dict[str, pa.Table], encoded: dict[str, bytes] | None
     return fill
 
 
-def _parquet_bytes(table: pa.Table):
+def _parquet_bytes(table: pa.Table) -> pa.Buffer:
     """``table`` as the bytes of a zstd Parquet file (what :func:`parquet_filler` would write)."""
     import pyarrow as pa
     import pyarrow.parquet as pq
@@ -289,7 +289,8 @@ def _parquet_bytes(table: pa.Table):
     return sink.getvalue()
 
 
-def _encoded_edges(ranker: Ranker, names: pa.Array, ranks: np.ndarray):
+def _encoded_edges(ranker: Ranker, names: pa.Array, ranks: np.ndarray) -> pa.Buffer:
+    """``edges.parquet`` sorted and encoded (the work :func:`write_snapshot` hands to a second thread)."""
     return _parquet_bytes(edge_table(ranker, names, ranks))
 
 
